@@ -295,6 +295,13 @@ class Phase:
         frac = np.abs(phase - np.round(phase)) > 1e-6
         return np.any(invariant & frac, axis=1)
 
+    def is_centring_absent_array(self, hkl) -> np.ndarray:
+        """True where lattice centring forbids a reflection (never seen, even by double diffraction)."""
+        h = np.atleast_2d(np.asarray(hkl, dtype=np.int64))
+        ident = np.all(self.space_group.rotations == np.eye(3, dtype=int), axis=(1, 2))
+        ph = h @ self.space_group.translations[ident].T
+        return np.any(np.abs(ph - np.round(ph)) > 1e-6, axis=1)
+
     def calculate_equivalent_array(self, hkl) -> np.ndarray:
         """Symmetry-equivalent reflections of one (hkl) under the Laue group (with Friedel), (M, 3) unique."""
         h = np.asarray(hkl, dtype=np.int64)

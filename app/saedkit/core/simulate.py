@@ -165,14 +165,14 @@ def simulate_spot_pattern(
         ah = zolz.hkl[allowed]
         ai = inten[allowed]
         lookup = {tuple(h): i for i, h in enumerate(ah.tolist())}
-        for i in np.flatnonzero(~allowed & ~zolz.absent_space_group | (~allowed & zolz.absent_space_group)):
+        for i in np.flatnonzero(~allowed):
             h = zolz.hkl[i]
             best = 0.0
             for j, h1 in enumerate(ah):
                 k = lookup.get(tuple((h - h1).tolist()))
                 if k is not None:
                     best = max(best, min(ai[j], ai[k]))
-            if best > 0 and not _is_centring_absent(phase, h):
+            if best > 0 and not phase.is_centring_absent_array(h)[0]:
                 inten[i] = 0.3 * best
                 forbidden[i] = True
     draw = (allowed | forbidden) & (inten >= min_relative_intensity * (inten[allowed].max() if allowed.any() else 1))
@@ -208,15 +208,6 @@ def simulate_spot_pattern(
     truth = SpotPatternTruth(phase.name, uvw, K, float(rotation_deg), (float(c[0]), float(c[1])), ellipse,
                              float(voltage_kv), hkl, rt.spot_xy, d, rt.spot_snr, forbidden, extra)
     return image, truth
-
-
-def _is_centring_absent(phase: Phase, hkl) -> bool:
-    """True when a lattice-centring translation forbids the reflection (never seen, even dynamically)."""
-    rot = phase.space_group.rotations
-    tra = phase.space_group.translations
-    ident = np.all(rot == np.eye(3, dtype=int), axis=(1, 2))
-    ph = tra[ident] @ np.asarray(hkl, float)
-    return bool(np.any(np.abs(ph - np.round(ph)) > 1e-6))
 
 
 def simulate_ring_pattern(
