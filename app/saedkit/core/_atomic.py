@@ -24,6 +24,10 @@ def write_with_atomic(path: str | os.PathLike, writer: Callable[[str], None]) ->
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
     os.close(fd)
+    # mkstemp makes the file private (0600); give it the permissions a plain open() would
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o666 & ~umask)
     try:
         writer(tmp)
         with open(tmp, "rb+") as fh:
