@@ -289,7 +289,8 @@ class Phase:
         h = np.atleast_2d(np.asarray(hkl, dtype=np.int64))
         rot = self.space_group.rotations
         tra = self.space_group.translations
-        hr = np.einsum("ni,kij->nkj", h, rot)  # h·R for every op
+        k = len(rot)
+        hr = (h @ rot.transpose(1, 0, 2).reshape(3, 3 * k)).reshape(len(h), k, 3)  # h·R for every op
         invariant = np.all(hr == h[:, None, :], axis=2)
         phase = h @ tra.T
         frac = np.abs(phase - np.round(phase)) > 1e-6

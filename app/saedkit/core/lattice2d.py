@@ -21,6 +21,8 @@ References
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from ._validate import check_points_xy, check_xy
@@ -77,14 +79,16 @@ def _candidate_vectors(v: np.ndarray, max_spots: int = 30) -> np.ndarray:
     flip = (cand[:, 0] < 0) | ((cand[:, 0] == 0) & (cand[:, 1] < 0))
     cand[flip] *= -1
     cand = cand[np.argsort(np.linalg.norm(cand, axis=1))]
-    kept: list[np.ndarray] = []
+    kept = np.empty((14, 2))
+    n = 0
     for c in cand:
-        tol = 0.04 * np.linalg.norm(c) + 0.5
-        if all(np.linalg.norm(c - k) > tol for k in kept):
-            kept.append(c)
-        if len(kept) >= 14:
-            break
-    return np.array(kept)
+        tol = 0.04 * math.hypot(c[0], c[1]) + 0.5
+        if n == 0 or np.min(np.hypot(kept[:n, 0] - c[0], kept[:n, 1] - c[1])) > tol:
+            kept[n] = c
+            n += 1
+            if n == len(kept):
+                break
+    return kept[:n]
 
 
 def _refine(p_ideal: np.ndarray, mn: np.ndarray, w: np.ndarray):

@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import lru_cache
 from typing import Callable, Sequence
 
 import numpy as np
@@ -79,6 +80,7 @@ class _PhaseData:
     rep_idx: np.ndarray  # indices of family representatives (h1 candidates)
 
 
+@lru_cache(maxsize=64)
 def _phase_data(phase: Phase, g_cap: float, g_h1_cap: float, voltage_kv: float) -> _PhaseData:
     t = calculate_reflections(phase, g_max_per_A=g_cap, voltage_kv=voltage_kv)
     # basis vectors of the spot lattice can be kinematically forbidden reflections (rutile 100
@@ -100,8 +102,18 @@ def _phase_data(phase: Phase, g_cap: float, g_h1_cap: float, voltage_kv: float) 
 
 
 def _canonical_zone(phase: Phase, u) -> tuple[int, int, int]:
+    return _canonical_zone_cached(phase, tuple(int(x) for x in u))
+
+
+@lru_cache(maxsize=4096)
+def _canonical_zone_cached(phase: Phase, u: tuple[int, int, int]) -> tuple[int, int, int]:
     eq = phase.calculate_equivalent_directions(u)
     return tuple(int(v) for v in canonical_indices(eq))
+
+
+@lru_cache(maxsize=512)
+def _zolz(phase: Phase, u: tuple[int, int, int], g_max: float, voltage_kv: float) -> "_Zolz":
+    return _Zolz(phase, u, g_max, voltage_kv)
 
 
 class _Zolz:
@@ -241,8 +253,10 @@ def match_zone_axes(
             g_min = float(calculate_reflections(phase, g_max_per_A=1.0 / min(phase.cell.a, phase.cell.b, phase.cell.c) * 2.01).g_per_A.min())
             g_h1_cap = 3.5 * g_min
         g_cap = g_h1_cap * (r2 / r1) * (1 + dtol) * 1.001
-        data = _phase_data(phase, g_cap, g_h1_cap, voltage_kv)
-        zolz_cache: dict = {}
+        # rounded caps let repeated searches (GUI, batch) reuse the cached tables
+        g_h1_cap = float(np.ceil(g_h1_cap * 50) / 50)
+        g_cap = float(np.ceil(g_cap * 50) / 50)
+        data = _phase_data(phase, g_cap, g_h1_cap, float(voltage_kv))
         best_by_key: dict = {}
         for i1 in data.rep_idx:
             h1g = data.g[i1]
@@ -279,7 +293,7 @@ def match_zone_axes(
                     continue
                 cand = _score_hypothesis(
                     phase, u, h1, h2, lattice, v, R, p, centre, Dm, sig, K_given, K_sig, dtol,
-                    r_obs_max, r_pred_max, image_shape, mask, voltage_kv, zolz_cache,
+                    r_obs_max, r_pred_max, image_shape, mask, voltage_kv,
                 )
                 best_by_key[key] = cand
         # one result per symmetry-equivalent zone (the best of its hypotheses)
@@ -308,7 +322,7 @@ def match_zone_axes(
 
 
 def _score_hypothesis(phase, u, h1, h2, lattice: Lattice2D, v, R, p, centre, Dm, sig, K_given, K_sig, dtol,
-                      r_obs_max, r_pred_max, image_shape, mask, voltage_kv, zolz_cache):
+                      r_obs_max, r_pred_max, image_shape, mask, voltage_kv):
     cell = phase.cell
     e1, e2, _ = calculate_zone_frame(cell, u)
     B = cell.reciprocal_basis
@@ -343,13 +357,8 @@ def _score_hypothesis(phase, u, h1, h2, lattice: Lattice2D, v, R, p, centre, Dm,
     pred_v = q @ S.T
     pos_err = np.linalg.norm(v - pred_v, axis=1)
 
-    key = (tuple(int(x) for x in u), K_given if K_given is not None else round(K_fit, 1))
-    g_pred_max = r_pred_max / K_fit
-    zkey = (tuple(int(x) for x in u), round(g_pred_max, 3))
-    zolz = zolz_cache.get(zkey)
-    if zolz is None:
-        zolz = _Zolz(phase, u, g_pred_max, voltage_kv)
-        zolz_cache[zkey] = zolz
+    g_pred_max = float(np.ceil(r_pred_max / K_fit * 20) / 20)
+    zolz = _zolz(phase, tuple(int(x) for x in u), g_pred_max, float(voltage_kv))
 
     K_use = K_given if K_given is not None else K_fit
     K_use_sig = K_sig if K_given is not None else K_fit_sig
@@ -426,7 +435,6 @@ def _score_hypothesis(phase, u, h1, h2, lattice: Lattice2D, v, R, p, centre, Dm,
     notes = [_AMBIGUITY_NOTE]
     if forbidden_flags.any():
         notes.append(f"{int(forbidden_flags.sum())} spot(s) kinematically forbidden, explained by double diffraction")
-    del key
     return ZoneCandidate(
         phase=phase.name,
         zone=tuple(int(x) for x in u),
