@@ -4,6 +4,11 @@ VENV   := .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed-stamp
 
+# numpy's BLAS threads fight over 2 cores on small matrices (100x slower under load)
+OPENBLAS_NUM_THREADS ?= 1
+OMP_NUM_THREADS ?= 1
+export OPENBLAS_NUM_THREADS OMP_NUM_THREADS
+
 .PHONY: run test bench demo clean
 
 $(STAMP): pyproject.toml

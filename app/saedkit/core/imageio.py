@@ -16,6 +16,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
+import logging
 import math
 import os
 import struct
@@ -620,10 +621,16 @@ def _read_tiff(p: Path, where: str, page: int, max_bytes: int | None, kind: str)
     import tifffile
 
     meta: dict[str, Any] = {}
+    # tifffile reports some damage through the logging module; we report it ourselves, in one line
+    log = logging.getLogger("tifffile")
+    level = log.level
+    log.setLevel(logging.CRITICAL)
     try:
         with tifffile.TiffFile(p) as tf:
             pages = tf.pages
             n_pages = len(pages)
+            if n_pages == 0:
+                raise ImageReadError(f"{where}: the TIFF holds no image (corrupt or truncated file)")
             if not 0 <= page < n_pages:
                 raise _page_error(where, page, n_pages)
             pg = pages[page]
@@ -646,6 +653,8 @@ def _read_tiff(p: Path, where: str, page: int, max_bytes: int | None, kind: str)
         raise ImageReadError(f"{where}: not enough memory to read the image") from exc
     except Exception as exc:  # a corrupt, truncated or unsupported TIFF
         raise ImageReadError(f"{where}: cannot read TIFF: {_one_line(exc)}") from exc
+    finally:
+        log.setLevel(level)
 
     raw = np.asarray(raw)
     if "S" in axes and raw.ndim == len(axes):
