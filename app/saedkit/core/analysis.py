@@ -65,6 +65,38 @@ class Analysis:
         i = min(max(self.chosen_candidate, 0), len(self.match.candidates) - 1)
         return self.match.candidates[i]
 
+    def camera_terms(self) -> tuple[float | None, float, Any]:
+        """(K, σ_K, ellipse) for turning spot radii into d: the calibration's, else the chosen candidate's K."""
+        from .distortion import NO_DISTORTION
+
+        cal = self.calibration
+        if cal is not None:
+            return float(cal.camera_constant_px_A), float(cal.camera_constant_sigma_px_A or 0.0), cal.ellipse
+        cand = self.candidate
+        if cand is not None:
+            return float(cand.camera_constant_px_A), float(cand.camera_constant_sigma_px_A or 0.0), NO_DISTORTION
+        return None, 0.0, NO_DISTORTION
+
+    def _spot_records(self) -> list[dict]:
+        """Spots with their radius from the centre (ellipse-corrected) and, when K is known, d ± σ."""
+        import numpy as np
+
+        recs = [s.to_dict() for s in self.spots]
+        if self.centre is None:
+            return recs
+        K, K_sig, ellipse = self.camera_terms()
+        xy = np.array([[s.x, s.y] for s in self.spots], float)
+        R = np.hypot(*ellipse.correct_array(xy - self.centre.xy).T)
+        c_sig = float(np.hypot(self.centre.sigma_x, self.centre.sigma_y)) / np.sqrt(2)
+        for rec, s, r in zip(recs, self.spots, R):
+            rec["radius_px"] = float(r)
+            if K is not None and r > 0:
+                s_r = float(np.hypot(np.hypot(s.sigma_x, s.sigma_y) / np.sqrt(2), c_sig))
+                d = K / r
+                rec["d_A"] = d
+                rec["d_sigma_A"] = d * float(np.hypot(s_r / r, K_sig / K))
+        return recs
+
     def to_dict(self) -> dict:
         """The JSON record (schema in the README)."""
         rec: dict[str, Any] = {
@@ -83,7 +115,7 @@ class Analysis:
         if self.calibration is not None:
             rec["calibration"] = self.calibration.to_dict()
         if self.spots:
-            rec["spots"] = [s.to_dict() for s in self.spots]
+            rec["spots"] = self._spot_records()
         if self.match is not None:
             rec["match"] = self.match.to_dict()
             rec["candidates"] = rec["match"].get("candidates", [])

@@ -1,0 +1,46 @@
+"""Options shared by the commands that run the zone-axis matcher (index, tiltpair, report, batch)."""
+
+from __future__ import annotations
+
+from ._common import positive_float
+
+
+def add_match_options(parser, *, phases_required: bool = True) -> None:
+    """--phase (repeatable), --kv, tolerances, --max-index, --top."""
+    parser.add_argument("--phase", action="append", required=phases_required, metavar="NAME|CIF",
+                        help="candidate phase: a library name (see `saedkit phases`) or a CIF file; repeat for several")
+    parser.add_argument("--kv", type=positive_float, metavar="KV",
+                        help="accelerating voltage in kV (default: from the image, else 200)")
+    parser.add_argument("--d-tol", type=positive_float, default=2.5, metavar="PCT",
+                        help="spacing tolerance in %% (default 2.5)")
+    parser.add_argument("--angle-tol", type=positive_float, default=2.0, metavar="DEG",
+                        help="angle tolerance in degrees (default 2)")
+    parser.add_argument("--max-index", type=int, default=10, metavar="N",
+                        help="largest zone-axis index |u|, |v|, |w| considered (default 10)")
+    parser.add_argument("--top", type=int, default=5, metavar="N", help="number of candidates listed (default 5)")
+    parser.add_argument("--min-snr", type=positive_float, default=5.0, metavar="S",
+                        help="smallest spot signal-to-noise ratio kept (default 5)")
+
+
+def resolve_phases(names) -> list:
+    """Phases from library names or CIF paths."""
+    from ..core.library import find_phase
+
+    return [find_phase(n) for n in (names or [])]
+
+
+def describe_candidates(match, *, top: int) -> list[str]:
+    """Human-readable lines for the ranked candidates."""
+    from ..core.crystal import format_indices
+
+    lines = [f"{'#':>2} {'phase':6s} {'zone':14s} {'score':>6s} {'d err %':>8s} {'ang err°':>8s} {'rot°':>7s} "
+             f"{'K (px·Å)':>9s} {'explained':>9s}"]
+    for i, c in enumerate(match.candidates[:top], 1):
+        zone = format_indices(c.zone, brackets="[]")
+        if c.zone_four_index is not None:
+            zone += " " + format_indices(c.zone_four_index, brackets="[]")
+        lines.append(f"{i:2d} {c.phase:6s} {zone:14s} {c.score:6.3f} {c.d_error_pct:8.2f} {c.angle_error_deg:8.2f} "
+                     f"{c.in_plane_rotation_deg:7.1f} {c.camera_constant_px_A:9.1f} {c.n_explained:4d}/{c.n_spots:<4d}")
+    if not match.candidates:
+        lines.append("   no candidate: " + "; ".join(match.notes))
+    return lines

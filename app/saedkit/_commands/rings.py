@@ -1,0 +1,122 @@
+"""``saedkit rings``: the rings of a polycrystalline pattern, with spacings when calibrated."""
+
+from __future__ import annotations
+
+import argparse
+
+from ._calib_options import add_calibration_options, calibration_source_record, resolve_calibration_options
+from ._common import add_json_option, finite_or_none, positive_float, software_record
+
+_EPILOG = """\
+examples:
+  saedkit rings film.tif
+  saedkit rings film.tif --json
+  saedkit rings film.tif --calibration "200 kV CL 600 mm"
+  saedkit rings film.tif --camera-constant 1520.4 --camera-constant-sigma 0.8 --json
+
+Each ring's radius is the mean of its ellipse's semi-axes (the ideal radius,
+with the pattern's own elliptical distortion fitted and corrected). With a
+calibration or a camera constant, d = K/R with σ_d/d = √((σ_R/R)² + (σ_K/K)²).
+"""
+
+
+def register(sub) -> None:
+    p = sub.add_parser(
+        "rings",
+        help="find the rings, their centre and ellipse; d-spacings when calibrated",
+        description="Find the rings of a polycrystalline pattern: their common centre, the elliptical "
+        "distortion and each ring's radius with its uncertainty; with a calibration, the d-spacings.",
+        epilog=_EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("image", help="ring pattern (TIFF, MRC, PNG, JPEG, .npy)")
+    add_calibration_options(p)
+    p.add_argument("--min-snr", type=positive_float, default=4.0, metavar="S",
+                   help="smallest ring signal-to-noise ratio in the radial profile (default 4)")
+    p.add_argument("--no-ellipse", action="store_true", help="fit circles (no elliptical distortion)")
+    add_json_option(p)
+    p.set_defaults(func=run)
+
+
+def run(args):
+    from types import SimpleNamespace
+
+    import numpy as np
+
+    from ..core.calibration import calculate_d_from_radius_array, calculate_d_sigma_from_radius_array
+    from ..core.distortion import NO_DISTORTION
+    from ..core.imageio import read_pattern
+    from ..core.masks import find_auto_mask
+    from ..core.rings import find_rings
+
+    resolved = resolve_calibration_options(args)
+    image = read_pattern(args.image)
+    mask = np.asarray(image.mask, bool) | find_auto_mask(image.data, saturation_value=image.saturation_value)
+    fit = find_rings(image.data, mask=mask, min_snr=args.min_snr, fit_ellipse=not args.no_ellipse)
+    c, ell = fit.centre, fit.ellipse
+    R = np.array([r.radius_px for r in fit.rings])
+    sR = np.array([r.radius_sigma_px for r in fit.rings])
+    d = sd = None
+    if resolved is not None:
+        K, sK, _, source = resolved
+        cal_like = source if not isinstance(source, str) else SimpleNamespace(
+            camera_constant_px_A=K, camera_constant_sigma_px_A=sK, ellipse=NO_DISTORTION)
+        d = calculate_d_from_radius_array(R, cal_like)
+        sd = calculate_d_sigma_from_radius_array(R, sR, cal_like)
+    rings = []
+    for i, r in enumerate(fit.rings):
+        entry = {
+            "radius_px": r.radius_px,
+            "radius_sigma_px": finite_or_none(r.radius_sigma_px),
+            "semi_major_px": r.radius_px * (1 + ell.ellipticity / 2),
+            "semi_minor_px": r.radius_px * (1 - ell.ellipticity / 2),
+            "height": r.height,
+            "width_px": r.width_px,
+            "snr": r.snr,
+            "n_points": r.n_points,
+        }
+        if d is not None:
+            entry["d_A"] = finite_or_none(d[i])
+            entry["d_sigma_A"] = finite_or_none(sd[i])
+        rings.append(entry)
+    rec = {
+        "software": software_record(),
+        "image": image.to_dict(),
+        "centre_px": [c.x, c.y],
+        "centre_sigma_px": [finite_or_none(c.sigma_x), finite_or_none(c.sigma_y)],
+        "ellipse": {
+            "ellipticity": ell.ellipticity,
+            "major_axis_deg": ell.major_axis_deg,
+            "ellipticity_sigma": finite_or_none(fit.ellipticity_sigma),
+            "major_axis_sigma_deg": finite_or_none(fit.major_axis_sigma_deg),
+        },
+        "residual_rms_px": finite_or_none(fit.residual_rms_px),
+        "rings": rings,
+        "calibration": calibration_source_record(resolved),
+    }
+    if resolved is not None:
+        rec["camera_constant_px_A"] = resolved[0]
+        rec["camera_constant_rel_sigma"] = resolved[1] / resolved[0]
+    lines = [
+        f"{args.image}: {len(rings)} ring{'s' if len(rings) != 1 else ''}",
+        f"centre (x, y) = ({c.x:.3f}, {c.y:.3f}) ± ({c.sigma_x:.2g}, {c.sigma_y:.2g}) px",
+        f"ellipse e = {100 * ell.ellipticity:.3f} ± {100 * fit.ellipticity_sigma:.2g} % at "
+        f"{ell.major_axis_deg:.1f} ± {min(fit.major_axis_sigma_deg, 90):.2g}°",
+    ]
+    if resolved is not None:
+        K, sK, _, source = resolved
+        src = "entered" if isinstance(source, str) else f"calibration {source.name!r}"
+        lines.append(f"K = {K:.3f} ± {sK:.2g} px·Å ({src})")
+    lines.append("")
+    head = f"  {'R (px)':>10s} {'± (px)':>8s} {'SNR':>7s}"
+    if d is not None:
+        head += f" {'d (Å)':>9s} {'± (Å)':>8s}"
+    lines.append(head)
+    for i, r in enumerate(fit.rings):
+        line = f"  {r.radius_px:10.3f} {r.radius_sigma_px:8.3f} {r.snr:7.1f}"
+        if d is not None:
+            line += f" {d[i]:9.4f} {sd[i]:8.4f}"
+        lines.append(line)
+    if resolved is None:
+        lines.append("(no calibration: give --calibration NAME or --camera-constant K for d-spacings)")
+    return rec, "\n".join(lines)

@@ -1,0 +1,171 @@
+"""Whole analyses of one pattern, as the command line, the batch runner and the demo run them.
+
+Each function chains the core steps (mask → centre → spots or rings →
+calibration → match or identification) with the same defaults as the
+desktop program, and returns an :class:`~saedkit.core.analysis.Analysis`.
+"""
+
+from __future__ import annotations
+
+from typing import Callable, Sequence
+
+import numpy as np
+
+from .analysis import Analysis
+from .centre import CentreResult
+from .crystal import Phase
+from .distortion import NO_DISTORTION, Ellipse
+from .errors import InputError
+
+__all__ = ["analyse_spot_pattern", "analyse_ring_pattern", "calibration_terms"]
+
+Progress = Callable[[int, int], None]
+Stop = Callable[[], bool]
+
+
+def calibration_terms(calibration=None, *, camera_constant_px_A: float | None = None,
+                      camera_constant_sigma_px_A: float | None = None) -> tuple[float | None, float, Ellipse]:
+    """(K, σ_K, ellipse) from a calibration (fitted or saved) or a typed-in K."""
+    if calibration is not None and camera_constant_px_A is not None:
+        raise InputError("give a calibration or a camera constant, not both")
+    if calibration is not None:
+        return (float(calibration.camera_constant_px_A), float(calibration.camera_constant_sigma_px_A or 0.0),
+                calibration.ellipse)
+    if camera_constant_px_A is not None:
+        return float(camera_constant_px_A), float(camera_constant_sigma_px_A or 0.0), NO_DISTORTION
+    return None, 0.0, NO_DISTORTION
+
+
+def _stage(progress: Progress | None, done: int, total: int) -> None:
+    if progress is not None:
+        progress(done, total)
+
+
+def analyse_spot_pattern(
+    image,
+    *,
+    phases: Sequence[Phase] = (),
+    calibration=None,
+    camera_constant_px_A: float | None = None,
+    camera_constant_sigma_px_A: float | None = None,
+    voltage_kv: float | None = None,
+    mask: np.ndarray | None = None,
+    centre_xy=None,
+    min_snr: float = 5.0,
+    d_tolerance_pct: float = 2.5,
+    angle_tolerance_deg: float = 2.0,
+    max_index: int = 10,
+    top: int = 10,
+    progress: Progress | None = None,
+    should_stop: Stop | None = None,
+) -> Analysis:
+    """Centre, spots and (with phases) the zone-axis match of a single-crystal pattern.
+
+    Parameters
+    ----------
+    image : PatternImage
+    phases : sequence of Phase
+        Candidate phases; without any the analysis stops after the spots.
+    calibration : Calibration or SavedCalibration, optional
+        Supplies K, σ_K and the ellipse correction.
+    camera_constant_px_A, camera_constant_sigma_px_A : float, optional
+        A typed-in K instead of a calibration.
+    voltage_kv : float, optional
+        Defaults to the image's metadata, then 200 kV.
+    mask : bool array, optional
+        Pixels to exclude; default: the image's mask plus saturated pixels and the beam stop.
+    centre_xy : [x, y], optional
+        A known centre (skips the Friedel search).
+    """
+    from .centre import find_centre_spots, manual_centre
+    from .masks import find_auto_mask
+    from .matching import match_zone_axes
+    from .spots import find_spots, spots_xy_array
+
+    K, K_sig, ellipse = calibration_terms(calibration, camera_constant_px_A=camera_constant_px_A,
+                                          camera_constant_sigma_px_A=camera_constant_sigma_px_A)
+    kv = float(voltage_kv or getattr(image, "voltage_kv", None) or 200.0)
+    data = image.data
+    total = 4 if phases else 3
+    if mask is None:
+        mask = np.asarray(image.mask, bool) | find_auto_mask(data, saturation_value=image.saturation_value)
+    _stage(progress, 1, total)
+    if centre_xy is not None:
+        centre = manual_centre(float(centre_xy[0]), float(centre_xy[1]), sigma_px=0.5)
+    else:
+        centre = find_centre_spots(data, mask=mask)
+    _stage(progress, 2, total)
+    spots = find_spots(data, mask=mask, centre_xy=centre.xy, min_snr=min_snr, should_stop=should_stop)
+    _stage(progress, 3, total)
+    match = None
+    if phases and len(spots) >= 3:
+        sig = np.array([np.hypot(s.sigma_x, s.sigma_y) / np.sqrt(2) for s in spots])
+        match = match_zone_axes(
+            spots_xy_array(spots), centre.xy, list(phases), camera_constant_px_A=K,
+            camera_constant_sigma_px_A=K_sig, ellipse=ellipse, voltage_kv=kv, d_tolerance_pct=d_tolerance_pct,
+            angle_tolerance_deg=angle_tolerance_deg, max_index=max_index, top=top, spots_sigma_px=sig,
+            image_shape=data.shape, mask=mask, should_stop=should_stop,
+        )
+        lat = match.lattice
+        if lat is not None and np.all(np.isfinite(lat.centre_sigma_px)):
+            centre = CentreResult(lat.centre_xy[0], lat.centre_xy[1], lat.centre_sigma_px[0], lat.centre_sigma_px[1],
+                                  "spot-lattice", int(np.sum(lat.inliers)))
+        _stage(progress, 4, total)
+    params = {
+        "voltage_kv": kv, "min_snr": min_snr, "d_tolerance_pct": d_tolerance_pct,
+        "angle_tolerance_deg": angle_tolerance_deg, "max_index": max_index, "top": top,
+        "phases": [p.name for p in phases], "camera_constant_px_A": K, "camera_constant_sigma_px_A": K_sig,
+        "ellipse": ellipse.to_dict(), "calibration": getattr(calibration, "name", None),
+    }
+    return Analysis(image=image, centre=centre, spots=tuple(spots), calibration=calibration, match=match,
+                    parameters=params)
+
+
+def analyse_ring_pattern(
+    image,
+    *,
+    standard: Phase | None = None,
+    calibration=None,
+    camera_constant_px_A: float | None = None,
+    voltage_kv: float | None = None,
+    pixel_size_um: float | None = None,
+    phases: Sequence[Phase] = (),
+    mask: np.ndarray | None = None,
+    d_tolerance_pct: float = 1.5,
+    progress: Progress | None = None,
+    should_stop: Stop | None = None,
+) -> Analysis:
+    """Rings of a polycrystalline pattern: calibrate against a standard, or measure and identify phases.
+
+    With ``standard`` the camera constant is fitted (the pattern is a
+    calibration film); otherwise the rings are measured, converted to d
+    with the given calibration or K, and, with ``phases``, the phases are ranked.
+    """
+    from .calibration import calibrate_from_rings
+    from .identify import identify_phases
+    from .masks import find_auto_mask
+    from .rings import find_rings
+
+    kv = float(voltage_kv or getattr(image, "voltage_kv", None) or 200.0)
+    px = pixel_size_um or getattr(image, "pixel_size_um", None)
+    data = image.data
+    if mask is None:
+        mask = np.asarray(image.mask, bool) | find_auto_mask(data, saturation_value=image.saturation_value)
+    params = {"voltage_kv": kv, "pixel_size_um": px, "d_tolerance_pct": d_tolerance_pct,
+              "standard": None if standard is None else standard.name, "phases": [p.name for p in phases]}
+    if standard is not None:
+        if calibration is not None or camera_constant_px_A is not None:
+            raise InputError("a standard is calibrated from scratch: give no calibration or camera constant with it")
+        cal = calibrate_from_rings(image, standard, voltage_kv=kv, mask=mask, pixel_size_um=px,
+                                   progress=progress, should_stop=should_stop)
+        return Analysis(image=image, centre=cal.centre, calibration=cal, parameters=params)
+    ring_fit = find_rings(data, mask=mask, progress=progress, should_stop=should_stop)
+    K, K_sig, _ = calibration_terms(calibration, camera_constant_px_A=camera_constant_px_A)
+    phase_id = None
+    if phases and K is not None and ring_fit.rings:
+        d = [K / r.radius_px for r in ring_fit.rings]
+        phase_id = identify_phases(d, list(phases), intensities=[max(r.height, 0.0) for r in ring_fit.rings],
+                                   d_tolerance_pct=d_tolerance_pct)
+    params["camera_constant_px_A"] = K
+    return Analysis(image=image, centre=ring_fit.centre, ring_fit=ring_fit, calibration=calibration,
+                    phase_id=phase_id, parameters=params)
