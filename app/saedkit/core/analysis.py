@@ -118,7 +118,8 @@ class Analysis:
             rec["spots"] = self._spot_records()
         if self.match is not None:
             rec["match"] = self.match.to_dict()
-            rec["candidates"] = rec["match"].get("candidates", [])
+            # the candidates stand at the top level of the record (README schema), once
+            rec["candidates"] = rec["match"].pop("candidates", [])
             rec["chosen_candidate"] = self.chosen_candidate
         if self.phase_id is not None:
             rec["phase_identification"] = self.phase_id.to_dict()
