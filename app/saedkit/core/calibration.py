@@ -631,15 +631,6 @@ def _expected_snr(P, inten, R_m, h_m, snr_m, inten_m, noise_at) -> np.ndarray:
 # --------------------------------------------------------------------------- joint fit over ring points
 
 
-def _ellipse_from_components(p1: float, p2: float) -> Ellipse:
-    e = math.hypot(p1, p2)
-    phi = 0.5 * math.degrees(math.atan2(p2, p1)) if e > 0 else 0.0
-    return Ellipse(e, phi)
-
-
-def _components(ellipse: Ellipse) -> tuple[float, float]:
-    t = 2.0 * math.radians(ellipse.major_axis_deg)
-    return ellipse.ellipticity * math.cos(t), ellipse.ellipticity * math.sin(t)
 
 
 def _ellipse_sigmas(p1, p2, c22) -> tuple[float, float]:
@@ -708,7 +699,7 @@ def _fit_joint_points(pts_list, q, centre, ellipse, K0, fit_ellipse) -> _JointFi
     n_rings = len(pts_list)
     pts = np.concatenate(pts_list)
     ring = np.concatenate([np.full(len(p), i) for i, p in enumerate(pts_list)])
-    p1, p2 = _components(ellipse)
+    p1, p2 = ellipse.components
     x0 = np.array([centre[0], centre[1], p1, p2, K0]) if fit_ellipse else np.array([centre[0], centre[1], K0])
     n_par = len(x0)
     w = np.ones(len(pts))
@@ -754,7 +745,7 @@ def _fit_joint_points(pts_list, q, centre, ellipse, K0, fit_ellipse) -> _JointFi
     cov = np.linalg.inv(jtj) * s2
     sig = np.sqrt(np.clip(np.diag(cov), 0.0, None))
     if fit_ellipse:
-        ell = _ellipse_from_components(x[2], x[3])
+        ell = Ellipse.from_components(x[2], x[3])
         sig_e, sig_phi = _ellipse_sigmas(x[2], x[3], cov[2:4, 2:4])
     else:
         ell, sig_e, sig_phi = NO_DISTORTION, 0.0, 0.0
@@ -822,6 +813,15 @@ def _apparent_b(d_A, power, expected, snr) -> tuple[float, float] | None:
 
 def _fmt_pct(x: float) -> str:
     return f"{100 * x:.2f} %"
+
+
+def _ellipticity_warnings(ell: Ellipse) -> list[str]:
+    """The large-ellipticity warning with its usual remedy, when it applies."""
+    if ell.ellipticity <= ELLIPTICITY_WARN:
+        return []
+    return [f"ellipticity e = {_fmt_pct(ell.ellipticity)} (> {_fmt_pct(ELLIPTICITY_WARN)}) at "
+            f"{ell.major_axis_deg:.1f}°: check the projector/intermediate-lens astigmatism (stigmators), "
+            "or keep the ellipse correction on"]
 
 
 # --------------------------------------------------------------------------- rings
@@ -1212,12 +1212,7 @@ def calibrate_from_rings(
             f"(apparent Debye–Waller factor {ab[0]:.2f} ± {ab[1]:.2f} Å²). The film may not be {name} — a heavier "
             "element with the same structure has the same ring radii — or strongly textured; check the standard"
         )
-    if ell.ellipticity > ELLIPTICITY_WARN:
-        warnings.append(
-            f"ellipticity e = {_fmt_pct(ell.ellipticity)} (> {_fmt_pct(ELLIPTICITY_WARN)}) at "
-            f"{ell.major_axis_deg:.1f}°: check the projector/intermediate-lens astigmatism (stigmators), "
-            "or keep the ellipse correction on"
-        )
+    warnings.extend(_ellipticity_warnings(ell))
     report(10)
     final_profile = calculate_radial_profile(data, centre_res.xy, mask=mask, ellipse=ell)
     L, lamL = _derived_lengths(K, px, kv)
@@ -1453,7 +1448,7 @@ def calibrate_from_spots(
 
         def comps(av):
             Kx, ex, _ = _decompose_affine(av.reshape(2, 2))
-            p1, p2 = _components(ex)
+            p1, p2 = ex.components
             return np.array([Kx, p1, p2])
 
         base = comps(a)
@@ -1561,12 +1556,7 @@ def calibrate_from_spots(
                 f"the indexed spots deviate from the fitted lattice by {rms:.2f} px RMS: the indices, the "
                 "centre or the standard may be wrong, or the pattern distorted"
             )
-    if ell.ellipticity > ELLIPTICITY_WARN:
-        warnings.append(
-            f"ellipticity e = {_fmt_pct(ell.ellipticity)} (> {_fmt_pct(ELLIPTICITY_WARN)}) at "
-            f"{ell.major_axis_deg:.1f}°: check the projector/intermediate-lens astigmatism (stigmators), "
-            "or keep the ellipse correction on"
-        )
+    warnings.extend(_ellipticity_warnings(ell))
     L, lamL = _derived_lengths(K, px, kv)
     return Calibration(
         camera_constant_px_A=float(K),

@@ -78,6 +78,19 @@ class Ellipse:
         return v @ self.inverse_matrix.T
 
     @property
+    def components(self) -> tuple[float, float]:
+        """``(e·cos 2φ, e·sin 2φ)``: smooth through e = 0, the form least-squares fits use."""
+        two_phi = 2.0 * np.deg2rad(self.major_axis_deg)
+        return float(self.ellipticity * np.cos(two_phi)), float(self.ellipticity * np.sin(two_phi))
+
+    @classmethod
+    def from_components(cls, p1: float, p2: float) -> "Ellipse":
+        """The ellipse with components ``(e·cos 2φ, e·sin 2φ) = (p1, p2)``."""
+        e = float(np.hypot(p1, p2))
+        phi = 0.5 * float(np.degrees(np.arctan2(p2, p1))) if e > 0 else 0.0
+        return cls(e, phi)
+
+    @property
     def is_identity(self) -> bool:
         """True when the distortion is zero."""
         return self.ellipticity == 0.0

@@ -73,17 +73,6 @@ def _check_ellipse(ellipse) -> Ellipse:
     return ellipse
 
 
-def _ellipse_from_components(p1: float, p2: float) -> Ellipse:
-    """``Ellipse`` from ``(e·cos 2phi, e·sin 2phi)``."""
-    e = math.hypot(p1, p2)
-    phi = 0.5 * math.degrees(math.atan2(p2, p1)) if e > 0 else 0.0
-    return Ellipse(e, phi)
-
-
-def _components(ellipse: Ellipse) -> tuple[float, float]:
-    """``(e·cos 2phi, e·sin 2phi)`` of an ellipse."""
-    two_phi = 2.0 * math.radians(ellipse.major_axis_deg)
-    return ellipse.ellipticity * math.cos(two_phi), ellipse.ellipticity * math.sin(two_phi)
 
 
 # --------------------------------------------------------------------------- profile
@@ -1288,7 +1277,7 @@ def fit_concentric_ellipses(
     sig = np.sqrt(np.clip(np.diag(cov), 0.0, None))
     if fit_ellipse:
         p1, p2 = params[2], params[3]
-        ellipse = _ellipse_from_components(p1, p2)
+        ellipse = Ellipse.from_components(p1, p2)
         e = ellipse.ellipticity
         c22 = cov[2:4, 2:4]
         if e > 0:
@@ -1688,7 +1677,7 @@ def find_rings(
             break
         fit, used = new_fit[0], [used_now[i] for i in new_fit[1]]
         moved = float(np.hypot(*(fit.centre.xy - centre)))
-        d_ell = np.hypot(*np.subtract(_components(fit.ellipse), _components(ellipse)))
+        d_ell = np.hypot(*np.subtract(fit.ellipse.components, ellipse.components))
         centre, ellipse = fit.centre.xy, fit.ellipse
         step()
         if it >= 1 and moved < 0.01 and d_ell < 1e-5:
