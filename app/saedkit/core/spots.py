@@ -89,7 +89,6 @@ _SNR_ALLOWANCE_SE = 5.0
 _SNR_ALLOWANCE_REL = 0.15
 _DEFAULT_SIGMA_PX = 2.0
 _MAD_TO_SIGMA = 1.4826  # Gaussian: sigma = 1.4826 * median absolute deviation
-_TILE = 256
 
 ProgressFn = Callable[[int, int], None]
 StopFn = Callable[[], bool]
@@ -144,8 +143,11 @@ class Spot:
         return np.array([self.x, self.y])
 
     def to_dict(self) -> dict:
-        """JSON-ready record (units in the keys where they are pixels)."""
-        return {
+        """JSON-ready record (units in the keys where they are pixels); unknown values are None.
+
+        A spot placed by hand has no measured intensity (NaN), and JSON has no NaN.
+        """
+        rec = {
             "x": self.x,
             "y": self.y,
             "sigma_x_px": self.sigma_x,
@@ -157,6 +159,7 @@ class Spot:
             "snr": self.snr,
             "width_px": self.width_px,
         }
+        return {k: (float(v) if np.isfinite(v) else None) for k, v in rec.items()}
 
 
 def spots_xy_array(spots: Sequence[Spot]) -> np.ndarray:
@@ -199,18 +202,22 @@ def _check_numeric_image(image) -> np.ndarray:
 
 
 def _saturation_level(arr: np.ndarray) -> float | None:
-    """The clipping level when two or more pixels share the image maximum.
+    """The clipping level when three or more pixels share the image maximum.
 
     A detector that saturates clips every overexposed pixel to the same value,
     so ties at the maximum are the signature of saturation (common practice).
-    Returns None for an image without ties at its maximum.
+    Returns None for an image without such ties (or with the maximum on more
+    than 5 % of the pixels, or no brighter than the median: not a clipped beam).
     """
     finite = arr if arr.dtype.kind in "uib" else arr[np.isfinite(arr)]
     if finite.size == 0:
         return None
     vmax = finite.max()
     n = np.count_nonzero(arr == vmax)
-    if n < 2 or n > 0.05 * arr.size:
+    if n < 3 or n > 0.05 * arr.size:
+        return None
+    sample = finite.ravel()[:: max(1, finite.size // 65536)]
+    if not vmax > np.median(sample):
         return None
     return float(vmax)
 
@@ -418,8 +425,8 @@ def _robust_background(
         cxc = (np.arange(nx) * k.cell + (k.cell - 1) / 2)[None, :]
         disc = np.hypot(cxc - beam[0], cyc - beam[1]) <= beam[2]
         keep = disc if keep is None else keep | disc
-    g0 = np.where(valid, grid, 0.0).astype(np.float64)
-    weight = valid.astype(np.float64)
+    g0 = np.where(valid, grid, 0.0).astype(np.float32)
+    weight = valid.astype(np.float32)
 
     def smooth(w, sigma):
         num = ndi.gaussian_filter(g0 * w, sigma, mode="constant")
@@ -432,7 +439,9 @@ def _robust_background(
     level = smooth(weight, k.smooth)
     w = weight
     sig = np.full(grid.shape, np.inf)
-    for _ in range(2):
+    for round_ in range(2):
+        if round_:
+            level = smooth(w, k.smooth)
         resid = np.where(valid, g0 - level, np.nan)
         # a spot covers a few cells: look for it both in single cells and in 3 × 3 means
         # (whose noise is 3 times lower), so that faint spots do not lift their own level
@@ -447,16 +456,12 @@ def _robust_background(
         if keep is not None:
             high &= ~keep
         w = weight * ~high
-        level = smooth(w, k.smooth)
-    lopsided = not np.all(w == 1.0)
-    if lopsided:
-        # around the left-out cells the weights are lopsided: fit a local plane there
-        # (first-order normalised convolution) so a steep gradient is not dragged in
-        level = _local_plane(g0, w, k.smooth, level)
+    # around left-out cells, masked cells and the image edge the weights are lopsided:
+    # fit a local plane (first-order normalised convolution) so that a steep gradient
+    # is not dragged in
+    level = _local_plane(g0, w, k.smooth)
     if k.wide > k.smooth:
-        broad = smooth(w, k.wide)
-        if lopsided:
-            broad = _local_plane(g0, w, k.wide, broad)
+        broad = _local_plane(g0, w, k.wide)
         # Gaussian smoothing of a curved background errs by (σ²/2)·∇²b; use the wide
         # smoother where its extra error is under half the filtered image's noise
         # (σ_R ≈ ‖K‖·σ_pixel, σ_pixel ≈ cell·σ_cell for white noise)
@@ -472,40 +477,40 @@ def _robust_background(
     return _Background(np.ascontiguousarray(level, dtype=np.float32), k.cell, img.shape)
 
 
-def _local_plane(f: np.ndarray, w: np.ndarray, sigma: float, fallback: np.ndarray) -> np.ndarray:
+def _local_plane(f: np.ndarray, w: np.ndarray, sigma: float) -> np.ndarray:
     """Value at each cell of the plane fitted to ``f`` with Gaussian × ``w`` weights [2]_.
 
-    Solves the 3 × 3 weighted least-squares normal equations per cell from
-    Gaussian-filtered moments; where they are ill-conditioned (too few
-    weights) the ``fallback`` is kept.
+    Solves the 3 × 3 weighted least-squares normal equations per cell. Their
+    entries are the moments ``Σ g(u)·w·(1, u, u²…)`` about each cell, i.e.
+    correlations with the separable kernels ``g``, ``u·g`` and ``u²·g``;
+    where they are ill-conditioned (too few weights) the weighted mean
+    (zeroth order) is used, and NaN where there are no weights at all.
     """
-    ny, nx = f.shape
-    yy, xx = np.mgrid[0:ny, 0:nx].astype(np.float64)
-    # coordinates relative to the grid centre keep the moments well scaled
-    xx -= nx / 2
-    yy -= ny / 2
+    r = max(1, int(4 * sigma + 0.5))
+    u = np.arange(-r, r + 1, dtype=np.float64)
+    g = np.exp(-u * u / (2 * sigma * sigma))
+    g /= g.sum()
+    kern = {0: g, 1: u * g, 2: u * u * g}
+    f = f.astype(np.float32, copy=False)
+    w = w.astype(np.float32, copy=False)
 
-    def gf(a):
-        return ndi.gaussian_filter(a, sigma, mode="constant")
+    def corr(a, ky, kx):
+        out = ndi.correlate1d(a, kern[kx], axis=1, mode="constant")
+        return ndi.correlate1d(out, kern[ky], axis=0, mode="constant")
 
-    m0 = gf(w)
-    wx, wy = gf(w * xx), gf(w * yy)
-    wxx, wxy, wyy = gf(w * xx * xx), gf(w * xx * yy), gf(w * yy * yy)
-    s0, sx, sy = gf(w * f), gf(w * f * xx), gf(w * f * yy)
-    # central moments about each cell
-    mx, my = wx - xx * m0, wy - yy * m0
-    mxx = wxx - 2 * xx * wx + xx * xx * m0
-    myy = wyy - 2 * yy * wy + yy * yy * m0
-    mxy = wxy - xx * wy - yy * wx + xx * yy * m0
-    tx, ty = sx - xx * s0, sy - yy * s0
+    wf = w * f
+    m0, mx, my = corr(w, 0, 0), corr(w, 0, 1), corr(w, 1, 0)
+    mxx, myy, mxy = corr(w, 0, 2), corr(w, 2, 0), corr(w, 1, 1)
+    s0, tx, ty = corr(wf, 0, 0), corr(wf, 0, 1), corr(wf, 1, 0)
     # a = first unknown of [[m0,mx,my],[mx,mxx,mxy],[my,mxy,myy]] · [a,b,c] = [s0,tx,ty] (Cramer)
     det = m0 * (mxx * myy - mxy * mxy) - mx * (mx * myy - mxy * my) + my * (mx * mxy - mxx * my)
     num = s0 * (mxx * myy - mxy * mxy) - mx * (tx * myy - mxy * ty) + my * (tx * mxy - mxx * ty)
     scale = np.maximum(m0, 1e-12) ** 3 * sigma**4
     with np.errstate(divide="ignore", invalid="ignore"):
         a = num / det
+        mean = np.where(m0 > 1e-3, s0 / m0, np.nan)
     good = (det > 1e-3 * scale) & (m0 > 1e-3) & np.isfinite(a)
-    return np.where(good, a, fallback)
+    return np.where(good, a, mean)
 
 
 def _block_sigma(a: np.ndarray, block: int) -> np.ndarray:
@@ -561,23 +566,31 @@ def _renormalise_near_mask(g: np.ndarray, bad: np.ndarray, k: _Kernel) -> np.nda
 
 def _response(img: np.ndarray, bad: np.ndarray | None, k: _Kernel, beam=None):
     """The detection image R = G_s*I − b, the background b, and where the
-    Gaussian footprint touches excluded pixels (None without a mask).
+    Gaussian footprint touches excluded pixels or the image edge.
     ``beam`` = (x, y, radius) of the central beam, or None."""
     g = ndi.gaussian_filter(img, k.s, truncate=_TRUNCATE, mode="reflect", output=np.float32)
-    near = None
     if bad is not None:
         near = _renormalise_near_mask(g, bad, k)
+    else:
+        near = np.zeros(img.shape, dtype=bool)
+    # at the image edge the reflected image has a kink: measure candidates there exactly too
+    r = _gauss_radius(k.s) + 1
+    near[:r] = near[-r:] = True
+    near[:, :r] = near[:, -r:] = True
     back = _robust_background(img, bad, k, beam)
     back.subtract_from(g)  # g is now the response
     return g, back, near
 
 
-def _exact_response(img: np.ndarray, bad: np.ndarray, cy: int, cx: int, k: _Kernel) -> tuple[float, float]:
+def _exact_response(
+    img: np.ndarray, bad: np.ndarray | None, cy: int, cx: int, k: _Kernel
+) -> tuple[float, float]:
     """The response at one pixel next to excluded pixels, done exactly.
 
     The Gaussian-weighted mean of the usable pixels minus a plane fitted (least
     squares) to the usable pixels around the spot (from 3 to 5 sigma), so a
-    background gradient does not bias it however the mask cuts the footprint.
+    background gradient does not bias it however the mask or the image edge
+    cuts the footprint.
     Returns ``(response, noise_factor)``, the factor being the norm of the
     equivalent linear kernel over ``k.norm``; ``(nan, nan)`` when the
     footprint is mostly excluded.
@@ -587,7 +600,7 @@ def _exact_response(img: np.ndarray, bad: np.ndarray, cy: int, cx: int, k: _Kern
     hb = max(hg + 2, int(math.ceil(5 * k.s)))
     y0, y1 = max(0, cy - hb), min(rows, cy + hb + 1)
     x0, x1 = max(0, cx - hb), min(cols, cx + hb + 1)
-    ok = ~bad[y0:y1, x0:x1]
+    ok = np.ones((y1 - y0, x1 - x0), bool) if bad is None else ~bad[y0:y1, x0:x1]
     dy, dx = np.mgrid[y0 - cy : y1 - cy, x0 - cx : x1 - cx]
     g = np.exp(-(dx * dx + dy * dy) / (2 * k.s * k.s)) * ((np.abs(dx) <= hg) & (np.abs(dy) <= hg))
     full = float(np.exp(-(np.arange(-hg, hg + 1) ** 2) / (2 * k.s * k.s)).sum() ** 2)
@@ -727,6 +740,7 @@ def _take_samples(
     rs = np.arange(off, nby * block, step)
     cs = np.arange(off, nbx * block, step)
     rs, cs = rs[: (len(rs) // nby) * nby], cs[: (len(cs) // nbx) * nbx]
+    rs, cs = np.minimum(rs, rows - 1), np.minimum(cs, cols - 1)  # tiny images
     lag = int(math.ceil(4 * k.s)) + 1
 
     def gather(a, dr=0, dc=0):
@@ -757,7 +771,7 @@ def _kernel_correlation(k: _Kernel, lag: int) -> float:
 
 
 def _measure_noise(
-    smp: _Samples, k: _Kernel, exclude_xy=None, radius: float = 0.0, *, with_kappa: bool = True
+    smp: _Samples, k: _Kernel, exclude_xy=None, exclude_z=None, *, with_kappa: bool = True
 ) -> _NoiseModel:
     """Measure the noise in blocks and model it against the background.
 
@@ -769,21 +783,31 @@ def _measure_noise(
     of the filtered image and the white-noise prediction ``‖K‖·σ_pixel`` (1
     for uncorrelated noise; larger for a detector that spreads each electron
     over several pixels) is the robust median over the blocks, never below 1
-    (1 when ``with_kappa`` is False). Samples within ``radius`` of the points
-    ``exclude_xy`` (spots found in a first pass) are left out.
+    (1 when ``with_kappa`` is False). Samples near the spots found in a
+    first pass (``exclude_xy``, with significances ``exclude_z``) are left
+    out: within 3 s + 1 for the pixel noise, and for κ out to where the
+    spot's response falls below half a noise sigma, ``2s·√ln(2z)``.
     """
     d, delta, b = smp.d, smp.delta, smp.b
     if exclude_xy is not None and len(exclude_xy):
-        keep = np.ones((len(smp.rows), len(smp.cols)), bool)
         rs, cs = smp.rows, smp.cols
-        for x, y in exclude_xy:
-            r0, r1 = np.searchsorted(rs, y - radius), np.searchsorted(rs, y + radius, side="right")
-            # delta pairs a sample with one `lag` to its right: drop both ends
-            c0 = np.searchsorted(cs, x - radius - smp.lag)
-            c1 = np.searchsorted(cs, x + radius, side="right")
-            keep[r0:r1, c0:c1] = False
-        kb = smp.blocks(keep)
-        d, delta, b = (np.where(kb, a, np.nan) for a in (d, delta, b))
+        zs = np.ones(len(exclude_xy)) if exclude_z is None else np.asarray(exclude_z, float)
+
+        def keep_outside(radii, lag):
+            keep = np.ones((len(rs), len(cs)), bool)
+            for (x, y), rad in zip(exclude_xy, radii):
+                r0, r1 = np.searchsorted(rs, y - rad), np.searchsorted(rs, y + rad, side="right")
+                # delta pairs a sample with one `lag` to its right: drop both ends
+                c0 = np.searchsorted(cs, x - rad - lag)
+                c1 = np.searchsorted(cs, x + rad, side="right")
+                keep[r0:r1, c0:c1] = False
+            return smp.blocks(keep)
+
+        near_d = keep_outside(np.full(len(zs), 3 * k.s + 1), 0)
+        reach = 2 * k.s * np.sqrt(np.log(2 * np.maximum(zs, 1.0))) + 1
+        near_q = keep_outside(np.maximum(reach, 3 * k.s + 1), smp.lag)
+        d, b = np.where(near_d, d, np.nan), np.where(near_d, b, np.nan)
+        delta = np.where(near_q, delta, np.nan)
     _, sig_d, n_d = _robust_rows(d)
     _, sig_q, n_q = _robust_rows(delta)
     b_med, _, _ = _robust_rows(b, rounds=1)
@@ -843,7 +867,6 @@ class _Candidates:
     xs: np.ndarray  # sub-pixel starts (log-parabola on the response)
     ys: np.ndarray
     z: np.ndarray  # significance R / sigma_R
-    peak: np.ndarray  # matched-filter peak estimate, counts
     edge: np.ndarray  # the Gaussian footprint touches excluded pixels
 
 
@@ -899,35 +922,46 @@ def _find_candidates(
     rows, cols = resp.shape
     bmin = float(back.grid.min())
     thr0 = z_min * noise.sigma_min(bmin)
-    with np.errstate(invalid="ignore"):
-        flat = np.flatnonzero(resp > thr0)
-    empty = _Candidates(*(np.zeros(0, int),) * 2, *(np.zeros(0),) * 4, np.zeros(0, bool))
-    if flat.size == 0:
+    empty = _Candidates(*(np.zeros(0, int),) * 2, *(np.zeros(0),) * 3, np.zeros(0, bool))
+    # local maxima above threshold, a band of rows at a time (bounded memory)
+    parts = []
+    band = max(1, (1 << 20) // cols)
+    for r0 in range(0, rows, band):
+        chunk = resp[r0 : r0 + band]
+        with np.errstate(invalid="ignore"):
+            flat = np.flatnonzero(chunk > thr0)
+        if flat.size == 0:
+            continue
+        by, bx = np.divmod(flat, cols)
+        by += r0
+        val = chunk.ravel()[flat]
+        # a local maximum in its 3x3 neighbourhood (NaN neighbours do not count; a tie
+        # with an earlier neighbour in raster order loses, so a flat top gives one maximum)
+        is_max = np.ones(len(by), bool)
+        for dy in (-1, 0, 1):
+            for dx in (-1, 0, 1):
+                if dy == 0 and dx == 0:
+                    continue
+                ny, nx = by + dy, bx + dx
+                inside = (ny >= 0) & (ny < rows) & (nx >= 0) & (nx < cols)
+                nb = np.full(len(by), -np.inf, dtype=np.float32)
+                nb[inside] = resp[ny[inside], nx[inside]]
+                with np.errstate(invalid="ignore"):
+                    is_max &= ~((nb > val) | ((nb == val) & ((dy < 0) | ((dy == 0) & (dx < 0)))))
+        by, bx, val = by[is_max], bx[is_max], val[is_max]
+        sig = noise.sigma_at(by, bx, back.at(by, bx)) * _border_factor(k, by, rows) * _border_factor(k, bx, cols)
+        sel = val >= z_min * sig
+        if bad is not None:
+            sel &= ~bad[by, bx]
+        if sel.any():
+            parts.append((by[sel], bx[sel], val[sel], sig[sel]))
+    if not parts:
         return empty
-    cy, cx = np.divmod(flat, cols)
-    val = resp.ravel()[flat]
-    sig = noise.sigma_at(cy, cx, back.at(cy, cx)) * _border_factor(k, cy, rows) * _border_factor(k, cx, cols)
-    z = val / sig
-    sel = z >= z_min
-    if bad is not None:
-        sel &= ~bad.ravel()[flat]
-    cy, cx, val, sig = cy[sel], cx[sel], val[sel], sig[sel]
-    # local maximum in the 3x3 neighbourhood (NaN neighbours do not count)
-    is_max = np.ones(len(cy), bool)
-    for dy in (-1, 0, 1):
-        for dx in (-1, 0, 1):
-            if dy == 0 and dx == 0:
-                continue
-            ny, nx = cy + dy, cx + dx
-            inside = (ny >= 0) & (ny < rows) & (nx >= 0) & (nx < cols)
-            nb = np.full(len(cy), -np.inf, dtype=np.float32)
-            nb[inside] = resp[ny[inside], nx[inside]]
-            with np.errstate(invalid="ignore"):
-                # a tie with an earlier neighbour (raster order) loses, so a flat top gives one maximum
-                is_max &= ~((nb > val) | ((nb == val) & ((dy < 0) | ((dy == 0) & (dx < 0)))))
-    cy, cx, val, sig = cy[is_max], cx[is_max], val[is_max].astype(float), sig[is_max]
+    cy, cx, val, sig = (np.concatenate(p) for p in zip(*parts))
+    val = val.astype(float)
     if near is not None and len(cy):
-        # next to the mask: measure again with a plane background fitted to the usable pixels
+        # next to the mask or the image edge: measure again with a plane background
+        # fitted to the usable pixels
         for i in np.flatnonzero(near[cy, cx]):
             r, factor = _exact_response(img, bad, int(cy[i]), int(cx[i]), k)
             val[i], sig[i] = r, sig[i] * factor
@@ -967,7 +1001,7 @@ def _find_candidates(
     xs = cx + _subpixel_offset(at(0, -1), c0, at(0, 1))
     ys = cy + _subpixel_offset(at(-1, 0), c0, at(1, 0))
     edge = np.zeros(len(cx), bool) if near is None else near[cy, cx]
-    return _Candidates(cx, cy, xs, ys, z, c0 / k.gain, edge)
+    return _Candidates(cx, cy, xs, ys, z, edge)
 
 
 def _detect(
@@ -1000,7 +1034,7 @@ def _detect(
         z_min=_MIN_SIGNIFICANCE, separation=separation, centre_xy=None, exclude_radius=0.0,
     )
     xy = np.stack([first.xs, first.ys], axis=1)
-    return run(_measure_noise(samples, k, xy, 3 * k.s + 1))
+    return run(_measure_noise(samples, k, xy, first.z))
 
 
 # ----------------------------------------------------------------------------- central beam
@@ -1421,7 +1455,7 @@ def find_spots(
         The diffraction pattern (any real dtype).
     mask : (rows, cols) bool array, optional
         True for excluded pixels (beam stop, dead pixels). Saturated pixels
-        (two or more pixels sharing the image maximum) are excluded too.
+        (three or more pixels sharing the image maximum) are excluded too.
     centre_xy : [x, y], optional
         Pattern centre, pixels. Without it the central beam is located as
         the brightest broad feature.
@@ -1439,9 +1473,11 @@ def find_spots(
         Two maxima closer than this count as one spot (default 3 sigma, at
         least 3 px).
     exclude_radius_px : float, optional
-        No spots within this radius of the centre. Default: the radius of the
-        central beam's bright (or saturated) core plus the filter footprint;
-        0 when no central beam is visible.
+        No spots within this radius of the centre (``centre_xy``, or the
+        central beam found in the image). Default: the radius of the central
+        beam's bright (or saturated) core plus the filter's reach; 0 when no
+        central beam is visible (e.g. behind the beam stop, whose mask then
+        does the job).
     max_spots : int
         Keep at most this many, the most intense.
     refine : {"gaussian", "centroid"}
@@ -1467,17 +1503,30 @@ def find_spots(
 
     Notes
     -----
-    The detection filter is ``K = G_s − U_B`` (Gaussian of sigma ``s`` minus a
-    ``B × B`` box mean, ``B = 2⌈4s⌉ + 1``). Its response to a spot of peak
-    ``A`` is ``A·k`` with ``k = Σ K·g`` (``g`` a unit Gaussian spot), and to
-    white noise of per-pixel sigma ``σ`` it is ``σ·‖K‖``; so ``R/k`` estimates
-    the peak and ``R/(σ‖K‖)`` is the significance [1]_. The position
-    uncertainty is the square root of the diagonal of ``s²(JᵀJ)⁻¹`` of the
-    Gaussian fit, ``s²`` the residual variance.
+    The detection image is ``R = G_s * I − b`` (``G_s`` a Gaussian of sigma
+    ``s``, the matched filter; ``b`` a smooth background that leaves the
+    spots out; see the module notes). A spot of peak ``A`` gives
+    ``R = A·k`` with ``k = Σ G_s·g ≈ 1/2`` (``g`` a unit Gaussian spot of the
+    same width), and white noise of per-pixel sigma ``σ`` gives
+    ``σ_R = σ·‖G_s‖ ≈ σ/(2√π s)``; so ``R/k`` estimates the peak, ``R/σ_R`` is
+    the significance [1]_, and the peak SNR is estimated with the standard
+    error ``‖G_s‖/k``. The position uncertainty comes from the Gaussian fit's
+    heteroscedasticity-consistent covariance ``(JᵀJ)⁻¹ Jᵀ diag(r²/(1−h)²) J
+    (JᵀJ)⁻¹`` (``r`` the residuals, ``h`` the leverages), which allows for the
+    shot noise of the spot itself [4]_. The intensity is summed in a disc of
+    radius 3 × the fitted width (98.9 % of a Gaussian) over a planar
+    background fitted to an annulus around it; its uncertainty combines the
+    pixel noise in the disc (from the fit residuals) and the uncertainty of
+    the background level.
+
+    Spots whose footprint is cut by the mask are measured on their usable
+    pixels only; a candidate there whose Gaussian fit fails is dropped (a
+    centroid of a cut spot is biased).
 
     References
     ----------
     .. [1] W. K. Pratt, *Digital Image Processing*, 4th ed. (2007), matched filters.
+    .. [4] J. G. MacKinnon and H. White, J. Econometrics 29, 305 (1985).
 
     Examples
     --------
@@ -1543,8 +1592,6 @@ def find_spots(
                 spots.append(sp)
         if progress is not None and ((i + 1) % step == 0 or i + 1 == limit):
             progress(i + 1, limit)
-    if progress is not None and limit == 0:
-        progress(0, 0)
     spots = _dedupe(spots, sep)
     spots.sort(key=lambda sp: -sp.intensity)
     return tuple(spots[:max_spots])
