@@ -122,3 +122,23 @@ def test_batch_survives_a_bad_file(patterns, capsys, tmp_path):
     with open(tmp_path / "b" / "summary.csv") as fh:
         rows = list(csv.DictReader(fh))
     assert [r["ok"] for r in rows] == ["True", "False", "True"]
+
+
+def test_calibrate_on_a_single_crystal_standard(capsys, tmp_path):
+    # Si along [011] with 2 % ellipticity: the matcher indexes it, then K and the ellipse are fitted
+    # over every indexed spot (Si a = 5.431144 Å, NIST SRM 640f)
+    from saedkit.core.distortion import Ellipse
+
+    img, t = simulate_spot_pattern(find_phase("Si"), (0, 1, 1), shape=(768, 768), camera_constant_px_A=330.0,
+                                   rotation_deg=12.0, ellipse=Ellipse(0.02, 40.0), thickness_A=80.0,
+                                   double_diffraction=True, beam_stop=BeamStop(angle_deg=200),
+                                   rng=np.random.default_rng(3))
+    p = tmp_path / "si011.tif"
+    write_tiff(p, img, voltage_kv=200.0, pixel_size_um=30.0)
+    rec = _json(capsys, ["calibrate", str(p), "--standard", "Si", "--spots", "--zone", "0", "1", "1", "--json"])
+    assert rec["camera_constant_px_A"] == pytest.approx(330.0, rel=2e-3)
+    assert rec["ellipse"]["ellipticity"] == pytest.approx(0.02, abs=0.003)
+    assert rec["method"] == "spots"
+    res = subprocess.run([sys.executable, "-m", "saedkit.cli", "calibrate", str(p), "--standard", "Si", "--spots",
+                          "--zone", "1", "1", "1"], capture_output=True, text=True)
+    assert res.returncode == 1 and "no zone of Si" in res.stderr

@@ -1,4 +1,4 @@
-"""``saedkit calibrate``: the camera constant from a ring pattern of a known standard."""
+"""``saedkit calibrate``: the camera constant from a ring pattern (or, with --spots, a single-crystal pattern) of a known standard."""
 
 from __future__ import annotations
 
@@ -13,6 +13,7 @@ examples:
   saedkit calibrate al_film.tif --standard Al --kv 120 --save "120 kV CL 800 mm" \\
       --instrument "TEM-1, 2k camera" --nominal-camera-length-mm 800 --binning 2
   saedkit calibrate film.tif --standard my_standard.cif --kv 300
+  saedkit calibrate si_011.tif --standard Si --kv 200 --spots --zone 0 1 1      # a single-crystal standard
 
 The rings are found and assigned to the standard's ring families without a
 starting K; K is fitted together with the centre and the elliptical
@@ -57,6 +58,10 @@ def register(sub) -> None:
     p.add_argument("--no-ellipse", action="store_true", help="fit circles (no elliptical distortion)")
     p.add_argument("--exact", action="store_true",
                    help="use the exact camera equation R = L·tan 2θ instead of R = λL/d")
+    p.add_argument("--spots", action="store_true",
+                   help="the image is a single-crystal spot pattern of the standard (e.g. Si), not a ring pattern")
+    p.add_argument("--zone", type=int, nargs=3, metavar=("U", "V", "W"),
+                   help="with --spots: the zone axis family of the pattern, if known (e.g. 0 1 1)")
     p.add_argument("--save", metavar="NAME", help="save the calibration in the library under NAME")
     p.add_argument("--overwrite", action="store_true", help="with --save: replace a calibration of the same name")
     p.add_argument("--instrument", default="", metavar="TEXT", help="with --save: microscope and camera (free text)")
@@ -89,8 +94,17 @@ def run(args):
     if args.save is not None and not args.save.strip():
         raise InputError("--save needs a non-empty name")
     mask = np.asarray(image.mask, bool) | find_auto_mask(image.data, saturation_value=image.saturation_value)
-    cal = calibrate_from_rings(image, phase, voltage_kv=kv, mask=mask, pixel_size_um=px, d_tolerance_pct=args.d_tol,
-                               min_snr=args.min_snr, fit_ellipse=not args.no_ellipse, exact_camera_equation=args.exact)
+    if args.spots:
+        from ..core.pipeline import calibrate_spot_standard
+
+        cal = calibrate_spot_standard(image, phase, voltage_kv=kv, zone=args.zone, pixel_size_um=px, mask=mask,
+                                      fit_ellipse=not args.no_ellipse)
+    elif args.zone:
+        raise InputError("--zone goes with --spots (a single-crystal pattern)")
+    else:
+        cal = calibrate_from_rings(image, phase, voltage_kv=kv, mask=mask, pixel_size_um=px,
+                                   d_tolerance_pct=args.d_tol, min_snr=args.min_snr, fit_ellipse=not args.no_ellipse,
+                                   exact_camera_equation=args.exact)
     c = cal.centre
     rec = {
         "software": software_record(),

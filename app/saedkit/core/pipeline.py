@@ -169,3 +169,80 @@ def analyse_ring_pattern(
     params["camera_constant_px_A"] = K
     return Analysis(image=image, centre=ring_fit.centre, ring_fit=ring_fit, calibration=calibration,
                     phase_id=phase_id, parameters=params)
+
+
+def calibrate_spot_standard(
+    image,
+    standard: Phase,
+    *,
+    voltage_kv: float | None = None,
+    zone=None,
+    pixel_size_um: float | None = None,
+    mask: np.ndarray | None = None,
+    min_snr: float = 5.0,
+    fit_ellipse: bool = True,
+    should_stop: Stop | None = None,
+):
+    """Camera constant from a single-crystal pattern of a known standard (e.g. Si along [011]).
+
+    The zone-axis matcher indexes the pattern against the standard alone
+    (uncalibrated: ratios and angles); when ``zone`` is given, the best
+    candidate of that zone family is taken. Its indexed spots then feed
+    :func:`~saedkit.core.calibration.calibrate_from_spots`, which fits K
+    and the ellipse over all of them.
+
+    Raises
+    ------
+    FitError
+        When too few spots are found, or no zone of the standard (of the
+        given family) explains the pattern.
+    """
+    from .calibration import calibrate_from_spots
+    from .centre import find_centre_spots
+    from .errors import FitError
+    from .masks import find_auto_mask
+    from .matching import match_zone_axes
+    from .spots import find_spots, spots_xy_array
+    from .structure_factors import canonical_indices
+
+    kv = float(voltage_kv or getattr(image, "voltage_kv", None) or 200.0)
+    px = pixel_size_um or getattr(image, "pixel_size_um", None)
+    data = image.data
+    if mask is None:
+        mask = np.asarray(image.mask, bool) | find_auto_mask(data, saturation_value=image.saturation_value)
+    centre = find_centre_spots(data, mask=mask)
+    spots = find_spots(data, mask=mask, centre_xy=centre.xy, min_snr=min_snr, should_stop=should_stop)
+    if len(spots) < 3:
+        raise FitError(f"{getattr(image, 'source_path', 'the image')}: only {len(spots)} spots found; "
+                       "a single-crystal standard needs at least 3")
+    xy = spots_xy_array(spots)
+    match = match_zone_axes(xy, centre.xy, [standard], voltage_kv=kv, image_shape=data.shape, mask=mask,
+                            top=20, should_stop=should_stop)
+    cands = list(match.candidates)
+    if zone is not None:
+        fam = tuple(canonical_indices(standard.calculate_equivalent_directions(zone)))
+        cands = [c for c in cands if tuple(canonical_indices(standard.calculate_equivalent_directions(c.zone))) == fam]
+    if not cands:
+        where = "" if zone is None else f" along a zone of the [{' '.join(str(int(v)) for v in zone)}] family"
+        raise FitError(f"no zone of {standard.name}{where} explains this spot pattern")
+    best = cands[0]
+    indexed = [s for s in best.spots if s.hkl is not None and not s.forbidden]
+    lat = match.lattice
+    c_xy = np.array(lat.centre_xy if lat is not None else centre.xy)
+
+    def offset(s):
+        return np.array([s.x, s.y]) - c_xy
+
+    # the candidate's first basis reflection, then a spot well off its line: they fix the 2-D basis
+    a = next((s for s in indexed if s.hkl == tuple(best.basis_hkl[0])), indexed[0] if indexed else None)
+    b = None
+    if a is not None:
+        va = offset(a)
+        b = next((s for s in indexed if abs(va[0] * offset(s)[1] - va[1] * offset(s)[0])
+                  > 0.3 * np.linalg.norm(va) * np.linalg.norm(offset(s))), None)
+    if b is None:
+        raise FitError("the indexed spots do not give two independent reflections")
+    first = [a, b]
+    refl = [((s.x, s.y), s.hkl) for s in first] + [((s.x, s.y), s.hkl) for s in indexed if s not in first]
+    return calibrate_from_spots(xy, c_xy, standard, voltage_kv=kv, reflections=refl, pixel_size_um=px,
+                                fit_ellipse=fit_ellipse, image_sha256=getattr(image, "sha256", None))
