@@ -29,6 +29,14 @@ def resolve_phases(names) -> list:
     return [find_phase(n) for n in (names or [])]
 
 
+def _pad(text: str, width: int) -> str:
+    """Left-justify text whose overbars are combining characters (they take no column)."""
+    import unicodedata
+
+    shown = sum(1 for ch in text if not unicodedata.combining(ch))
+    return text + " " * max(width - shown, 0)
+
+
 def describe_candidates(match, *, top: int) -> list[str]:
     """Human-readable lines for the ranked candidates."""
     from ..core.crystal import format_indices
@@ -39,7 +47,7 @@ def describe_candidates(match, *, top: int) -> list[str]:
         zone = format_indices(c.zone, brackets="[]")
         if c.zone_four_index is not None:
             zone += " " + format_indices(c.zone_four_index, brackets="[]")
-        lines.append(f"{i:2d} {c.phase:6s} {zone:14s} {c.score:6.3f} {c.d_error_pct:8.2f} {c.angle_error_deg:8.2f} "
+        lines.append(f"{i:2d} {c.phase:6s} {_pad(zone, 14)} {c.score:6.3f} {c.d_error_pct:8.2f} {c.angle_error_deg:8.2f} "
                      f"{c.in_plane_rotation_deg:7.1f} {c.camera_constant_px_A:9.1f} {c.n_explained:4d}/{c.n_spots:<4d}")
     if not match.candidates:
         lines.append("   no candidate: " + "; ".join(match.notes))
