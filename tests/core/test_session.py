@@ -359,3 +359,32 @@ def test_fitted_and_saved_calibrations_survive_the_session_file(session, tmp_pat
     t.set_calibration(saved)
     u = Session.load(t.save(tmp_path / "d.saedkit.json"))
     assert u.calibration == saved and u.camera_constant[0] == pytest.approx(401.2)
+
+
+def test_phase_identification_is_undoable_saved_and_exported(session, tmp_path):
+    from saedkit.core.identify import PhaseIdentification, identify_phases
+
+    # first rings of Au (a = 4.0782 Å, Maeland & Flanagan 1964): 111, 200, 220, 311
+    d = [2.3545, 2.0391, 1.4419, 1.2296]
+    pid = identify_phases(d, [find_phase("Au"), find_phase("Cu"), find_phase("Fe")], intensities=[1, 0.5, 0.3, 0.3])
+    s = session
+    events = []
+    s.subscribe(events.append)
+    with pytest.raises(InputError, match="PhaseIdentification"):
+        s.set_phase_id("Au")
+    s.set_phase_id(pid)
+    assert s.phase_id is pid and "phase_id" in events[-1] and s.undo_label == "Identify phases"
+    assert s.to_analysis().phase_id is pid
+    assert s.to_analysis().to_dict()["phase_identification"]["candidates"][0]["phases"] == ["Au"]
+    s.undo()
+    assert s.phase_id is None and "phase_id" in events[-1]
+    s.redo()
+    t = Session.load(s.save(tmp_path / "p.saedkit.json"))
+    assert type(t.phase_id) is PhaseIdentification and t.phase_id.best.phases == ("Au",)
+    assert json.dumps(t.phase_id.to_dict()) == json.dumps(pid.to_dict())
+    assert t.phase_id.candidates[0].matches[0].hkl == (1, 1, 1) and type(t.phase_id.candidates[0].matches) is tuple
+    # a session file written before phase identification existed loads with none
+    rec = json.loads((tmp_path / "p.saedkit.json").read_text())
+    del rec["phase_id"]
+    (tmp_path / "old.saedkit.json").write_text(json.dumps(rec))
+    assert Session.load(tmp_path / "old.saedkit.json").phase_id is None

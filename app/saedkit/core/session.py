@@ -3,7 +3,8 @@
 A :class:`Session` holds what a user builds up on one diffraction pattern:
 the image, the mask of excluded pixels, the centre, the spots (each found
 automatically or placed by hand), the ring fit, the calibration, the chosen
-phases, the zone-axis match and the candidate shown, and the settings
+phases, the zone-axis match and the candidate shown, the phases identified
+from the rings, and the settings
 (voltage, pixel size, tolerances). Every change goes through a method that
 
 1. records the previous state on the undo history (states are immutable
@@ -81,7 +82,7 @@ _MAX_HISTORY = 200
 #: The parts of a session's state that change and are named in notices.
 STATE_FIELDS = (
     "mask", "centre", "spots", "ring_fit", "calibration", "phases", "match",
-    "chosen_candidate", "settings",
+    "chosen_candidate", "phase_id", "settings",
 )
 
 
@@ -268,6 +269,7 @@ class SessionState:
     match: Any = None
     chosen_candidate: int = 0
     match_current: bool = True  # False once spots/centre/calibration changed after the search
+    phase_id: Any = None  # PhaseIdentification of a ring pattern
     settings: SessionSettings = field(default_factory=SessionSettings)
 
 
@@ -308,7 +310,7 @@ class SessionEvent:
     changed : frozenset of str
         Names among ``mask``, ``centre``, ``spots``, ``ring_fit``,
         ``calibration``, ``phases``, ``match``, ``chosen_candidate``,
-        ``settings``; plus ``image`` when a whole session was (re)loaded and
+        ``phase_id``, ``settings``; plus ``image`` when a whole session was (re)loaded and
         ``saved`` when only the saved/modified flag changed.
     label : str
         The edit's name as the Edit menu shows it ("Move spot").
@@ -793,6 +795,8 @@ class Session:
                                 doc="Index of the candidate shown (0 = best).")
     match_current = property(lambda self: self._state.match_current,
                              doc="False when spots, centre or calibration changed after the search.")
+    phase_id = property(lambda self: self._state.phase_id,
+                        doc="Phases ranked against the rings (PhaseIdentification) or None.")
     settings = property(lambda self: self._state.settings, doc="The session's SessionSettings.")
 
     @property
@@ -872,7 +876,7 @@ class Session:
         }
         return Analysis(image=self.masked_image, centre=st.centre, spots=tuple(st.spots),
                         ring_fit=st.ring_fit, calibration=st.calibration, match=st.match,
-                        chosen_candidate=st.chosen_candidate, parameters=params)
+                        chosen_candidate=st.chosen_candidate, phase_id=st.phase_id, parameters=params)
 
     # -- listeners ---------------------------------------------------------- #
 
@@ -1210,6 +1214,17 @@ class Session:
         """
         self._commit(label, match=match, chosen_candidate=0, match_current=bool(current))
 
+    def set_phase_id(self, phase_id, *, label: str = "Identify phases") -> None:
+        """Set (or clear) the phases ranked against the rings (a PhaseIdentification).
+
+        The ring spacings behind it come from the ring fit and the camera
+        constant in use when it was made; set the ring fit in the same
+        :meth:`transaction` so both are undone together.
+        """
+        if phase_id is not None and not hasattr(phase_id, "candidates"):
+            raise InputError(f"phase_id must be a PhaseIdentification, got {type(phase_id).__name__}")
+        self._commit(label, phase_id=phase_id)
+
     def choose_candidate(self, index: int, *, label: str = "Choose candidate") -> None:
         """Show candidate ``index`` of the match."""
         m = self._state.match
@@ -1255,6 +1270,7 @@ class Session:
             "match": _encode(st.match),
             "chosen_candidate": st.chosen_candidate,
             "match_current": st.match_current,
+            "phase_id": _encode(st.phase_id),
             "session_path": None if self.path is None else os.path.abspath(self.path),
         }
 
@@ -1379,7 +1395,7 @@ class Session:
                 ring_fit=_decode(record.get("ring_fit")), calibration=_decode(record.get("calibration")),
                 phases=tuple(str(x) for x in record.get("phases") or ()), match=match,
                 chosen_candidate=chosen, match_current=bool(record.get("match_current", True)),
-                settings=settings,
+                phase_id=_decode(record.get("phase_id")), settings=settings,
             )
         except SaedkitError as exc:
             if str(exc).startswith(str(p)):

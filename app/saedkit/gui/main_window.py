@@ -49,7 +49,7 @@ from . import settings as app_prefs
 from .dialogs import NewPhaseDialog, NoticeBar, PreferencesDialog, SaveCalibrationDialog, show_details
 from .display import DisplaySettings, calculate_colour_table, calculate_display_image
 from .icons import icon
-from .panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, SearchPanel
+from .panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, RingPhasesPanel, SearchPanel
 from .tools import TOOL_CLASSES, describe_pair
 from .view import LAYER_NAMES, PatternView, calculate_argb_image
 from .workers import TaskRunner
@@ -219,6 +219,9 @@ class MainWindow(QMainWindow):
                                     tip="Rank the zone axes of the ticked phases that explain the spots")
         self.act_calibrate = self._act("&Calibrate from rings", self.calibrate, icon_name="calibrate", shortcut="F7",
                                        tip="Fit the rings of a standard and find the camera constant")
+        self.act_identify = self._act("&Identify phases from rings", self.identify_phases, shortcut="F8",
+                                      tip="Rank the ticked phases (or the whole library) that explain the rings "
+                                      "of a polycrystalline film; needs a camera constant")
         self.act_centre_rings = self._act("Centre from &rings", self.centre_from_rings)
         self.act_centre_friedel = self._act("Centre from Friedel &pairs", self.centre_from_friedel)
         self.act_auto_mask = self._act("Automatic &mask", self.auto_mask,
@@ -279,7 +282,8 @@ class MainWindow(QMainWindow):
             m.addAction(a)
         m = mb.addMenu("&Analyse")
         for a in (self.act_auto_mask, self.act_clear_mask, None, self.act_centre_rings, self.act_centre_friedel,
-                  None, self.act_calibrate, self.act_find_spots, self.act_search, None, self.act_cancel):
+                  None, self.act_calibrate, self.act_find_spots, self.act_search, self.act_identify, None,
+                  self.act_cancel):
             m.addSeparator() if a is None else m.addAction(a)
         m = mb.addMenu("&Help")
         self._act_demo_session = m.addAction("Open the &demo session")
@@ -360,6 +364,7 @@ class MainWindow(QMainWindow):
         self.phases_panel = PhasesPanel(self)
         self.search_panel = SearchPanel(self)
         self.measurements_panel = MeasurementsPanel(self)
+        self.ring_phases_panel = RingPhasesPanel(self)
         right = Qt.DockWidgetArea.RightDockWidgetArea
         left = Qt.DockWidgetArea.LeftDockWidgetArea
         self._dock("calibration", "Camera constant", self.calibration_panel, left)
@@ -369,12 +374,15 @@ class MainWindow(QMainWindow):
         self._dock("search", "Zone-axis search", self.search_panel, right)
         self._dock("phases", "Phases", self.phases_panel, right)
         self.tabifyDockWidget(self.docks["search"], self.docks["phases"])
+        self._dock("ring_phases", "Phases from rings", self.ring_phases_panel, right)
+        self.tabifyDockWidget(self.docks["phases"], self.docks["ring_phases"])
         self.docks["search"].raise_()
         self._dock("measurements", "Measurements", self.measurements_panel, Qt.DockWidgetArea.BottomDockWidgetArea,
                    scroll=False)
         self.display_panel.display_changed.connect(self._display_changed)
         self.display_panel.layer_toggled.connect(self.set_layer_visible)
         self.measurements_panel.spot_selected.connect(self._table_selected_spot)
+        self.ring_phases_panel.chosen_changed.connect(lambda _row: self.refresh_overlays())
 
     def _build_status(self) -> None:
         sb = self.statusBar()
@@ -481,6 +489,8 @@ class MainWindow(QMainWindow):
             self.calibration_panel.refresh()
         if "phases" in changed:
             self.phases_panel.refresh()
+        if changed & {"phase_id", "ring_fit", "calibration", "phases"}:
+            self.ring_phases_panel.refresh()
         if event.kind in ("undo", "redo"):
             self.show_status(f"{event.kind.capitalize()}: {event.label}")
         self._update_title_and_actions()
@@ -488,7 +498,8 @@ class MainWindow(QMainWindow):
     def _refresh_all(self) -> None:
         self._refresh_mask()
         self.refresh_overlays()
-        for p in (self.calibration_panel, self.phases_panel, self.search_panel, self.measurements_panel):
+        for p in (self.calibration_panel, self.phases_panel, self.search_panel, self.ring_phases_panel,
+                  self.measurements_panel):
             p.refresh()
         self._update_title_and_actions()
 
@@ -506,7 +517,7 @@ class MainWindow(QMainWindow):
         self.act_undo.setText(f"&Undo {s.undo_label}" if has and s.can_undo else "&Undo")
         self.act_redo.setText(f"&Redo {s.redo_label}" if has and s.can_redo else "&Redo")
         for a in (self.act_save, self.act_save_as, self.act_export, self.act_find_spots, self.act_search,
-                  self.act_calibrate, self.act_centre_rings, self.act_centre_friedel, self.act_auto_mask,
+                  self.act_identify, self.act_calibrate, self.act_centre_rings, self.act_centre_friedel, self.act_auto_mask,
                   self.act_clear_mask):
             a.setEnabled(has)
 
@@ -569,7 +580,14 @@ class MainWindow(QMainWindow):
         centre = s.centre
         rings = list(getattr(cal, "rings", None) or ()) if cal is not None else []
         ell = getattr(cal, "ellipse", None) if cal is not None else None
-        if rings and getattr(cal, "centre", None) is not None:
+        identified = self._identified_ring_labels()
+        if identified is not None:
+            e = ring_fit.ellipse
+            v.ring_layer.set_rings((ring_fit.centre.x, ring_fit.centre.y), ring_fit.radius_px, identified,
+                                   e.ellipticity, e.major_axis_deg)
+            v.ellipse_layer.set_ellipse((ring_fit.centre.x, ring_fit.centre.y), 1.08 * float(ring_fit.radius_px.max()),
+                                        e.ellipticity, e.major_axis_deg)
+        elif rings and getattr(cal, "centre", None) is not None:
             ccentre = cal.centre
             v.ring_layer.set_rings((ccentre.x, ccentre.y), [r.radius_px for r in rings],
                                    [(getattr(r, "hkl", None), getattr(r, "d_A", None)) for r in rings],
@@ -592,6 +610,19 @@ class MainWindow(QMainWindow):
                                             ell.major_axis_deg)
             else:
                 v.ellipse_layer.set_ellipse(None, 0, 0, 0)
+
+    def _identified_ring_labels(self) -> list | None:
+        """(hkl, d) of each fitted ring under the chosen phase-identification row; None when there is none.
+
+        Only when the identification was made on the session's ring fit (one
+        spacing per ring).
+        """
+        s = self.session
+        pid, ring_fit = s.phase_id, s.ring_fit
+        if pid is None or not pid.candidates or ring_fit is None or len(ring_fit.rings) != len(pid.d_A):
+            return None
+        c = pid.candidates[min(self.ring_phases_panel.chosen_row(), len(pid.candidates) - 1)]
+        return [(None if m.hkl is None else tuple(int(x) for x in m.hkl), m.d_A) for m in c.matches]
 
     def set_layer_visible(self, name: str, on: bool) -> None:
         self.view.set_layer_visible(name, on)
@@ -1216,6 +1247,71 @@ class MainWindow(QMainWindow):
 
         self._submit("calibrate", "Calibrating", work, done)
 
+    def identify_phases(self) -> None:
+        """Fit the rings, turn their radii into d with the camera constant, and rank the phases that explain them.
+
+        Uses the phases ticked in the Phases panel, or the whole built-in
+        library when none is ticked. Without a calibration or a typed-in K it
+        only says what is missing.
+        """
+        s = self._require()
+        k, _, _, source = s.camera_constant
+        if source != "calibration" or not math.isfinite(k):
+            self.notify("Identifying phases from rings needs a camera constant to turn ring radii into "
+                        "d-spacings: calibrate on a standard first (F7 on a gold or aluminium film, or apply a "
+                        "saved calibration) or type a known K in the Camera constant panel.", "warning",
+                        actions=[("Camera constant panel", lambda: self.docks["calibration"].raise_())])
+            return
+        names = list(s.phases)
+        if not names:
+            from ..core.library import LIBRARY
+
+            names = [e.name for e in LIBRARY]
+        tol = self.ring_phases_panel.tolerance_pct()
+        mixtures = self.ring_phases_panel.use_mixtures()
+        data, mask = s.image.data, s.mask
+        guess = None if s.centre is None else (s.centre.x, s.centre.y)
+
+        def work(progress, should_stop):
+            from ..core.errors import FitError
+            from ..core.identify import identify_phases
+            from ..core.library import find_phase
+            from ..core.rings import find_rings
+
+            phases = [find_phase(n) for n in names]
+            fit = find_rings(data, mask=mask, centre_guess_xy=guess, progress=progress, should_stop=should_stop)
+            if not fit.rings:
+                raise FitError("no rings were found on this pattern: check the mask and the display, or use the "
+                               "zone-axis search for a spot pattern")
+            # camera equation R·d = K (DESIGN.md), on the ellipse-corrected ring radii
+            d = [k / r.radius_px for r in fit.rings]
+            pid = identify_phases(d, phases, intensities=[max(r.height, 0.0) for r in fit.rings],
+                                  d_tolerance_pct=tol, mixtures=mixtures)
+            return fit, pid
+
+        def done(result):
+            fit, pid = result
+            if self.session is not s:
+                return
+            with s.transaction("Identify phases from rings"):
+                s.set_ring_fit(fit)
+                if s.centre is None:
+                    s.set_centre(fit.centre)
+                s.set_phase_id(pid)
+            self.ring_phases_panel.choose_row(0)
+            best = pid.best
+            if best is None or best.score <= 0:
+                self.notify(f"No phase explains these {len(fit.rings)} rings within {tol:g} %. Check the camera "
+                            "constant, widen the tolerance or tick other phases.", "warning")
+            else:
+                self.notify(f"Best: {' + '.join(p.split('/')[-1] for p in best.phases)}, score {best.score:.3f}, "
+                            f"{100 * best.fraction_explained:.0f} % of the ring intensity explained, "
+                            f"{100 * best.fraction_seen:.0f} % of its strong rings seen, Δd {best.d_error_pct:.2f} % "
+                            f"({len(fit.rings)} rings, {len(names)} phases).", "success")
+            self.docks["ring_phases"].raise_()
+
+        self._submit("identify", "Identifying phases from rings", work, done)
+
     def use_camera_constant(self, k: float, sigma: float = 0.0) -> None:
         s = self._require()
         s.set_camera_constant(k, sigma_px_A=sigma)
@@ -1399,7 +1495,7 @@ class MainWindow(QMainWindow):
                  "left-drag pans with the Pan tool."]
         for cls in TOOL_CLASSES:
             lines.append(f"<b>{cls.title}</b>: {cls.hint}")
-        lines.append("<b>Keys</b>: Ctrl+2…6 choose a tool; F5 find spots; F6 search; F7 calibrate; "
+        lines.append("<b>Keys</b>: Ctrl+2…6 choose a tool; F5 find spots; F6 search; F7 calibrate; F8 identify phases; "
                      "Ctrl+0 fit; Ctrl+1 actual pixels; Ctrl+C in the table copies it.")
         QMessageBox.information(self, "Mouse and keys", "<br><br>".join(lines))
 
