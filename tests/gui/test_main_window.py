@@ -45,27 +45,9 @@ def si_file(tmp_path_factory):
     return path, truth
 
 
-@pytest.fixture
-def window(qtbot):
-    from saedkit.gui.main_window import MainWindow
-
-    w = MainWindow(synchronous=True)
-    qtbot.addWidget(w)
-    w.resize(1200, 800)
-    w.show()
-    qtbot.waitExposed(w)
-    return w
-
-
-def _open(window, path):
-    window.open_path(path, confirm=False)
-    assert window.session is not None, window.notices
-    return window.session
-
-
-def test_click_near_a_spot_gives_a_row_with_the_right_d(window, qtbot, si_file):
+def test_click_near_a_spot_gives_a_row_with_the_right_d(window, open_pattern, qtbot, si_file):
     path, truth = si_file
-    s = _open(window, path)
+    s = open_pattern(path)
     s.set_centre(manual_centre(*truth.centre_xy, sigma_px=0.2))
     window.use_camera_constant(K_SI, 0.5)
     window.set_tool("spot")
@@ -87,9 +69,9 @@ def test_click_near_a_spot_gives_a_row_with_the_right_d(window, qtbot, si_file):
     assert text.splitlines()[0].startswith("#\tfrom\tx (px)") and len(text.splitlines()) == 2
 
 
-def test_find_spots_and_search_si_011(window, si_file):
+def test_find_spots_and_search_si_011(window, open_pattern, si_file):
     path, truth = si_file
-    s = _open(window, path)
+    s = open_pattern(path)
     assert s.mask.any()  # the automatic mask found the beam stop
     s.set_centre(manual_centre(*truth.centre_xy, sigma_px=0.3))
     window.use_camera_constant(K_SI, 0.5)
@@ -113,14 +95,14 @@ def test_find_spots_and_search_si_011(window, si_file):
     assert not layer.isVisible() and not window.layer_actions["predicted"].isChecked()
 
 
-def test_calibrate_on_a_gold_ring_pattern(window, tmp_path):
+def test_calibrate_on_a_gold_ring_pattern(window, open_pattern, tmp_path):
     pytest.importorskip("saedkit.core.calibration")
     k_true = 300.0
     img, truth = simulate_ring_pattern(find_phase("Au"), shape=(512, 512), camera_constant_px_A=k_true,
                                        beam_stop=BeamStop(angle_deg=70.0), rng=np.random.default_rng(8))
     path = tmp_path / "au.tif"
     write_tiff(path, img, voltage_kv=200.0)
-    s = _open(window, path)
+    s = open_pattern(path)
     window.calibrate()
     cal = s.calibration
     assert cal is not None, window.notices
@@ -132,9 +114,9 @@ def test_calibrate_on_a_gold_ring_pattern(window, tmp_path):
     assert s.centre is not None and s.centre.method != "manual"
 
 
-def test_undo_redo_from_the_edit_menu(window, si_file):
+def test_undo_redo_from_the_edit_menu(window, open_pattern, si_file):
     path, truth = si_file
-    s = _open(window, path)
+    s = open_pattern(path)
     assert not window.act_undo.isEnabled()
     window.set_tool("spot")
     x, y = truth.xy[int(np.argmax(truth.snr))]
@@ -151,9 +133,9 @@ def test_undo_redo_from_the_edit_menu(window, si_file):
     assert QKeySequence("Ctrl+Shift+Z") in window.act_redo.shortcuts()
 
 
-def test_mask_brush_polygon_and_ruler(window, si_file):
+def test_mask_brush_polygon_and_ruler(window, open_pattern, si_file):
     path, truth = si_file
-    s = _open(window, path)
+    s = open_pattern(path)
     before = int(s.mask.sum())
     window.set_tool("mask")
     tool = window.tools["mask"]
@@ -188,9 +170,9 @@ def test_mask_brush_polygon_and_ruler(window, si_file):
     assert "Ruler" in window.measurements_panel.ruler.text()
 
 
-def test_save_close_and_reopen_the_session(qtbot, window, si_file, tmp_path, monkeypatch):
+def test_save_close_and_reopen_the_session(open_pattern, qtbot, window, si_file, tmp_path, monkeypatch):
     path, truth = si_file
-    s = _open(window, path)
+    s = open_pattern(path)
     s.set_centre(manual_centre(*truth.centre_xy, sigma_px=0.25))
     window.use_camera_constant(K_SI, 0.5)
     s.set_phases(["Si", "Ni"])
@@ -237,9 +219,9 @@ def test_a_corrupt_file_gives_a_message_and_the_window_lives(window, tmp_path):
     assert "RuntimeError: boom" in window.notices[-1][1]
 
 
-def test_a_search_without_candidates_says_so(window, si_file):
+def test_a_search_without_candidates_says_so(window, open_pattern, si_file):
     path, truth = si_file
-    s = _open(window, path)
+    s = open_pattern(path)
     s.set_centre(manual_centre(*truth.centre_xy, sigma_px=0.3))
     window.use_camera_constant(K_SI * 1.3, 0.5)  # a wrong K: nothing fits within 1 %
     s.set_phases(["Cu"])
@@ -250,12 +232,12 @@ def test_a_search_without_candidates_says_so(window, si_file):
     assert window.notices[-1][0] == "warning" and "No zone axis" in window.notices[-1][1]
 
 
-def test_autosave_and_recovery(qtbot, window, si_file):
+def test_autosave_and_recovery(open_pattern, qtbot, window, si_file):
     from saedkit.core.session import autosave_path, find_leftover_autosave
     from saedkit.gui.main_window import MainWindow
 
     path, truth = si_file
-    s = _open(window, path)
+    s = open_pattern(path)
     assert not window.autosave()  # nothing changed yet
     s.set_centre(manual_centre(100.5, 99.5))
     assert window.autosave() and autosave_path().is_file()
@@ -275,11 +257,11 @@ def test_autosave_and_recovery(qtbot, window, si_file):
     assert find_leftover_autosave() is None
 
 
-def test_display_changes_keep_the_image(window, si_file):
+def test_display_changes_keep_the_image(window, open_pattern, si_file):
     from saedkit.gui.display import DisplaySettings
 
     path, _ = si_file
-    _open(window, path)
+    open_pattern(path)
     panel = window.display_panel
     img_before = window.view._image8.copy()
     panel.colour.setCurrentText("ember")  # only the colour table changes
@@ -332,10 +314,10 @@ def test_gui_command_imports_no_qt_until_it_runs():
     assert res.returncode == 0, res.stderr
 
 
-def test_export_report_writes_the_bundle(window, si_file, tmp_path, monkeypatch):
+def test_export_report_writes_the_bundle(window, open_pattern, si_file, tmp_path, monkeypatch):
     pytest.importorskip("saedkit.report")
     path, truth = si_file
-    s = _open(window, path)
+    s = open_pattern(path)
     s.set_centre(manual_centre(*truth.centre_xy, sigma_px=0.3))
     window.use_camera_constant(K_SI, 0.5)
     window.find_spots()
@@ -383,13 +365,13 @@ def test_drop_readout_recent_files_preferences_and_a_typed_phase(window, si_file
     assert find_phase(cif).calculate_d_A((1, 0, 0)) == pytest.approx(3.572)
 
 
-def test_a_session_whose_image_moved_can_be_pointed_at_it(window, si_file, tmp_path, monkeypatch):
+def test_a_session_whose_image_moved_can_be_pointed_at_it(window, open_pattern, si_file, tmp_path, monkeypatch):
     import shutil
 
     path, truth = si_file
     img = tmp_path / "moved_away.tif"
     shutil.copy(path, img)
-    s = _open(window, img)
+    s = open_pattern(img)
     s.set_centre(manual_centre(50, 60))
     sess = s.save(tmp_path / "m.saedkit.json")
     window.set_session(None)

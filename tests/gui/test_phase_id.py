@@ -37,27 +37,9 @@ def al_file(tmp_path_factory):
     return path, truth
 
 
-@pytest.fixture
-def window(qtbot):
-    from saedkit.gui.main_window import MainWindow
-
-    w = MainWindow(synchronous=True)
-    qtbot.addWidget(w)
-    w.resize(1200, 800)
-    w.show()
-    qtbot.waitExposed(w)
-    return w
-
-
-def _open(window, path):
-    window.open_path(path, confirm=False)
-    assert window.session is not None, window.notices
-    return window.session
-
-
-def test_identify_an_al_film_against_the_library(window, al_file):
+def test_identify_an_al_film_against_the_library(window, open_pattern, al_file):
     path, _ = al_file
-    s = _open(window, path)
+    s = open_pattern(path)
     window.use_camera_constant(K_AL)
     assert s.phases == ()  # nothing ticked: the whole built-in library is searched
     window.act_identify.trigger()
@@ -100,9 +82,9 @@ def test_identify_an_al_film_against_the_library(window, al_file):
     assert rec["phase_identification"]["candidates"][0]["phases"] == ["Al"]
 
 
-def test_ticked_phases_only(window, al_file):
+def test_ticked_phases_only(window, open_pattern, al_file):
     path, _ = al_file
-    s = _open(window, path)
+    s = open_pattern(path)
     window.use_camera_constant(K_AL)
     s.set_phases(["Cu", "Al", "Fe"])
     window.identify_phases()
@@ -110,9 +92,9 @@ def test_ticked_phases_only(window, al_file):
     assert names <= {"Cu", "Al", "Fe"} and s.phase_id.best.phases == ("Al",)
 
 
-def test_without_a_camera_constant_it_says_what_is_needed(window, al_file):
+def test_without_a_camera_constant_it_says_what_is_needed(window, open_pattern, al_file):
     path, _ = al_file
-    s = _open(window, path)
+    s = open_pattern(path)
     window.act_identify.trigger()
     level, text = window.notices[-1]
     assert level == "warning" and "camera constant" in text and "calibrate" in text
@@ -121,9 +103,9 @@ def test_without_a_camera_constant_it_says_what_is_needed(window, al_file):
     assert "none yet" in window.ring_phases_panel.camera.text()
 
 
-def test_the_result_survives_save_and_load(window, al_file, tmp_path):
+def test_the_result_survives_save_and_load(window, open_pattern, al_file, tmp_path):
     path, _ = al_file
-    s = _open(window, path)
+    s = open_pattern(path)
     window.use_camera_constant(K_AL, 0.5)
     s.set_phases(["Al", "Au", "Ni"])
     window.identify_phases()

@@ -1,0 +1,27 @@
+"""Shared GUI fixtures: a synchronous main window, shown headless."""
+
+import pytest
+
+
+@pytest.fixture
+def window(qtbot):
+    from saedkit.gui.main_window import MainWindow
+
+    w = MainWindow(synchronous=True)
+    qtbot.addWidget(w)
+    w.resize(1200, 800)
+    w.show()
+    qtbot.waitExposed(w)
+    return w
+
+
+@pytest.fixture
+def open_pattern(window):
+    """Open a file in the window without dialogs; returns the new session."""
+
+    def _open(path):
+        window.open_path(path, confirm=False)
+        assert window.session is not None, window.notices
+        return window.session
+
+    return _open
