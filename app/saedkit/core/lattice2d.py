@@ -169,6 +169,12 @@ def find_lattice_2d(
     if len(cands) < 2:
         raise FitError("the spots do not span a plane lattice (too few distinct vectors)")
 
+    # Cells are compared by their Friedel-paired inliers (spots m,n and −m,−n both indexed): a stray
+    # spot (dust, a second grain) rarely has a partner, so a sub-cell that catches one by chance
+    # does not beat the true cell, while a sub-cell whose extra points hold real Friedel pairs
+    # (superlattice or double-diffraction rows) does. A larger cell that keeps every pair wins (a
+    # sub-cell indexes everything its cell does); cells of similar size compare on the paired count
+    # plus a quarter for each unpaired inlier.
     best = None
     for i in range(len(cands)):
         for j in range(i + 1, len(cands)):
@@ -181,13 +187,23 @@ def find_lattice_2d(
             mn, res = _index(p_ideal, a_r, b_r)
             ok = (res < tol) & np.any(mn != 0, axis=1)
             n_ok = int(ok.sum())
+            seen = {tuple(v) for v in mn[ok].tolist()}
+            n_pairs = sum(1 for v in mn[ok].tolist() if (-v[0], -v[1]) in seen)
+            score = n_pairs + 0.25 * (n_ok - n_pairs)
             area = abs(a_r[0] * b_r[1] - a_r[1] * b_r[0])
-            key = (n_ok, area)
-            if best is None or n_ok > best[0][0] or (n_ok >= best[0][0] * 0.97 and n_ok >= best[0][0] - 1 and area > best[0][1] * 1.5):
-                best = (key, a_r, b_r)
-    if best is None or best[0][0] < 3:
+            if best is None:
+                take = True
+            elif area > best[1] * 1.5:  # a larger cell: enough when it keeps every Friedel pair
+                take = n_pairs >= best[3] and (n_pairs > 0 or n_ok >= best[2])
+            elif area < best[1] / 1.5:  # a sub-cell: only when it explains more pairs
+                take = n_pairs > best[3] or (best[3] == 0 and n_ok > best[2])
+            else:
+                take = score > best[0] + 1e-9
+            if take:
+                best = (score, area, n_ok, n_pairs, a_r, b_r)
+    if best is None or best[2] < 3:
         raise FitError("no plane lattice explains at least 3 spots")
-    _, g1, g2 = best
+    g1, g2 = best[4], best[5]
     origin = np.zeros(2)
     # refine: index, least squares (basis and origin), tighten, repeat
     for tol_frac in (tolerance_frac, 0.8 * tolerance_frac, 0.6 * tolerance_frac):

@@ -420,15 +420,22 @@ def _score_hypothesis(phase, u, h1, h2, lattice: Lattice2D, v, R, p, centre, Dm,
             strong &= ~np.asarray(mask, bool)[iy, ix]
     n_strong = int(strong.sum())
     n_missing = 0
+    n_inner_missing = 0
     if n_strong:
         d2 = np.linalg.norm(zq2[strong][:, None, :] - v[None, :, :], axis=2)
         tol = np.maximum(dtol * rz[strong], 3 * float(np.median(sig)))[:, None] * 1.5
-        n_missing = int(np.sum(~np.any(d2 <= tol, axis=1)))
+        missing = ~np.any(d2 <= tol, axis=1)
+        n_missing = int(np.sum(missing))
+        # a strong reflection predicted closer to the centre than every measured spot, and not
+        # hidden by the mask, is the surest sign of a wrong scale: low orders are never all absent
+        r_inner = 0.9 * float(np.min(R[explained])) if explained.any() else 0.0
+        n_inner_missing = int(np.sum(missing & (rz[strong] < r_inner)))
 
     frac = n_exp / len(p)
     rel = pos_err[explained] / np.maximum(R[explained], 1e-9)
     rms_rel = float(np.sqrt(np.mean(rel**2)))
     score = frac * (1 - 0.6 * n_missing / max(n_strong, 1)) * math.exp(-0.5 * (rms_rel / dtol) ** 2)
+    score *= 0.5 ** n_inner_missing
     if K_given is not None:
         score *= math.exp(-0.5 * ((K_fit - K_given) / K_given / dtol) ** 2)
     four = to_four_index_direction(u) if phase.is_hexagonal else None
