@@ -8,9 +8,9 @@ numpy (a fixed amount of work that tracks the machine's speed).
 
 from __future__ import annotations
 
-import time
 
 import numpy as np
+from _timing import best_of
 
 from saedkit.core.library import LIBRARY, find_phase
 from saedkit.core import matching
@@ -18,20 +18,11 @@ from saedkit.core.matching import match_zone_axes
 from saedkit.core.simulate import simulate_spot_pattern
 
 
-def best_of(fn, n=5):
-    best = float("inf")
-    out = None
-    for _ in range(n):
-        t0 = time.perf_counter()
-        out = fn()
-        best = min(best, time.perf_counter() - t0)
-    return best, out
-
 
 def main() -> None:
     rng = np.random.default_rng(0)
     data = rng.random(1_000_000)
-    t_base, _ = best_of(lambda: np.sort(data))
+    t_base, _ = best_of(lambda: np.sort(data), 5)
     print(f"baseline np.sort(1e6 floats)            {t_base * 1e3:8.1f} ms")
 
     ph = find_phase("Ni")
@@ -50,9 +41,9 @@ def main() -> None:
         return run
 
     for label, kw in [("calibrated", {"camera_constant_px_A": 280.0}), ("uncalibrated", {})]:
-        dt1, r1 = best_of(cold(lambda: match_zone_axes(xy, centre, [ph], max_index=10, image_shape=(1024, 1024), **kw)))
-        dtl, rl = best_of(cold(lambda: match_zone_axes(xy, centre, phases, max_index=10, image_shape=(1024, 1024), **kw)), n=2)
-        dtw, _ = best_of(lambda: match_zone_axes(xy, centre, phases, max_index=10, image_shape=(1024, 1024), **kw), n=3)
+        dt1, r1 = best_of(cold(lambda: match_zone_axes(xy, centre, [ph], max_index=10, image_shape=(1024, 1024), **kw)), 5)
+        dtl, rl = best_of(cold(lambda: match_zone_axes(xy, centre, phases, max_index=10, image_shape=(1024, 1024), **kw)), 2)
+        dtw, _ = best_of(lambda: match_zone_axes(xy, centre, phases, max_index=10, image_shape=(1024, 1024), **kw), 3)
         b1 = r1.candidates[0]
         bl = rl.candidates[0]
         print(f"match 20 spots, one cubic phase, {label:12s} {dt1 * 1e3:8.1f} ms  {dt1 / t_base:6.1f}x baseline  "

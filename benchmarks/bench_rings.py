@@ -17,6 +17,7 @@ from __future__ import annotations
 import time
 
 import numpy as np
+from _timing import best_of
 
 from saedkit.core.distortion import Ellipse
 from saedkit.core.render import BeamStop, render_pattern
@@ -49,14 +50,6 @@ def make_pattern(seed: int = 20261202):
     return image, truth
 
 
-def best_of(fn, repeat: int = 3) -> float:
-    best = float("inf")
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
-
 
 def main() -> None:
     print(f"making a {SIZE}x{SIZE} uint16 ring pattern ...", flush=True)
@@ -68,14 +61,14 @@ def main() -> None:
     r_int = np.hypot(xx - np.float32(cx), yy - np.float32(cy)).astype(np.intp).ravel()
     del yy, xx
     flat = image.ravel()
-    baseline = best_of(lambda: np.bincount(r_int, weights=flat))
+    baseline, _ = best_of(lambda: np.bincount(r_int, weights=flat))
     del r_int
 
     ellipse = Ellipse(0.012, 33.0)
-    t_profile = best_of(
+    t_profile, _ = best_of(
         lambda: calculate_radial_profile(image, (cx, cy), mask=mask, ellipse=ellipse)
     )
-    t_profile_nomask = best_of(lambda: calculate_radial_profile(image, (cx, cy), ellipse=ellipse))
+    t_profile_nomask, _ = best_of(lambda: calculate_radial_profile(image, (cx, cy), ellipse=ellipse))
 
     t0 = time.perf_counter()
     fit = find_rings(image, mask=mask)

@@ -21,6 +21,7 @@ import time
 import tracemalloc
 
 import numpy as np
+from _timing import best_of
 from scipy import ndimage as ndi
 from scipy.spatial import cKDTree
 
@@ -63,14 +64,6 @@ def make_pattern(seed: int = 20261202):
     return image, truth
 
 
-def best_of(fn, repeat: int = 3) -> float:
-    best = float("inf")
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
-
 
 def recall(found_xy: np.ndarray, truth_xy: np.ndarray, tol_px: float = 2.0) -> float:
     if len(truth_xy) == 0:
@@ -92,7 +85,7 @@ def main() -> None:
         f"{int(np.sum(truth.spot_snr < 5))} fainter; beam stop and saturated beam"
     )
 
-    base = best_of(lambda: ndi.gaussian_filter(image.astype(np.float32), sigma=2))
+    base, _ = best_of(lambda: ndi.gaussian_filter(image.astype(np.float32), sigma=2))
     print(f"baseline: gaussian_filter sigma=2 on float32  {base:.3f} s")
 
     result = {}
@@ -100,7 +93,7 @@ def main() -> None:
     def run_find():
         result["spots"] = find_spots(image, mask=mask, refine="gaussian")
 
-    t_find = best_of(run_find)
+    t_find, _ = best_of(run_find)
     spots = result["spots"]
     rec_find = recall(spots_xy_array(spots), target_xy)
     print(
