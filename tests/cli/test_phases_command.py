@@ -39,3 +39,12 @@ def test_unknown_phase_one_line_error_and_exit_status():
 def test_bad_argument_exit_status():
     res = subprocess.run([sys.executable, "-m", "saedkit.cli", "phases", "--d-min", "x"], capture_output=True, text=True)
     assert res.returncode == 2 and "Traceback" not in res.stderr
+
+
+def test_gui_without_a_screen_says_so_in_one_line():
+    import os
+
+    env = {k: v for k, v in os.environ.items() if k not in ("DISPLAY", "WAYLAND_DISPLAY", "QT_QPA_PLATFORM")}
+    res = subprocess.run([sys.executable, "-m", "saedkit.cli", "gui"], capture_output=True, text=True, env=env)
+    if sys.platform.startswith("linux"):
+        assert res.returncode == 1 and "no screen" in res.stderr and res.stderr.count("\n") == 1

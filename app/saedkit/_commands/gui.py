@@ -25,11 +25,27 @@ def register(sub) -> None:
     p.set_defaults(func=run)
 
 
+def _check_screen() -> None:
+    """On Linux without a display Qt aborts the interpreter; say so in one line instead."""
+    import os
+    import sys
+
+    if not sys.platform.startswith("linux") or os.environ.get("QT_QPA_PLATFORM"):
+        return
+    if os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY"):
+        return
+    from ..core.errors import SaedkitError
+
+    raise SaedkitError("no screen to open the window on (neither DISPLAY nor WAYLAND_DISPLAY is set): "
+                       "run it on a desktop, under Xvfb, or use the command line (e.g. `saedkit demo`)")
+
+
 def run(args) -> int:
     if args.file and args.demo:
         from ..core.errors import InputError
 
         raise InputError("give a FILE or --demo, not both")
+    _check_screen()
     try:
         from ..gui.app import run as run_gui
     except ImportError as exc:  # e.g. PySide6 missing or no display libraries
