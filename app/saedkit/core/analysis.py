@@ -65,36 +65,45 @@ class Analysis:
         i = min(max(self.chosen_candidate, 0), len(self.match.candidates) - 1)
         return self.match.candidates[i]
 
-    def camera_terms(self) -> tuple[float | None, float, Any]:
-        """(K, σ_K, ellipse) for turning spot radii into d: the calibration's, else the chosen candidate's K."""
+    def _camera_source(self):
+        """What turns spot radii into d: the calibration, else the chosen candidate's K (no ellipse)."""
+        if self.calibration is not None:
+            return self.calibration
+        cand = self.candidate
+        if cand is None:
+            return None
+        from types import SimpleNamespace
+
         from .distortion import NO_DISTORTION
 
-        cal = self.calibration
-        if cal is not None:
-            return float(cal.camera_constant_px_A), float(cal.camera_constant_sigma_px_A or 0.0), cal.ellipse
-        cand = self.candidate
-        if cand is not None:
-            return float(cand.camera_constant_px_A), float(cand.camera_constant_sigma_px_A or 0.0), NO_DISTORTION
-        return None, 0.0, NO_DISTORTION
+        return SimpleNamespace(camera_constant_px_A=cand.camera_constant_px_A,
+                               camera_constant_sigma_px_A=cand.camera_constant_sigma_px_A, ellipse=NO_DISTORTION)
 
     def _spot_records(self) -> list[dict]:
         """Spots with their radius from the centre (ellipse-corrected) and, when K is known, d ± σ."""
         import numpy as np
 
+        from .calibration import calculate_corrected_radius_array, calculate_d_from_offset_array, calculate_d_sigma_array
+        from .distortion import NO_DISTORTION
+
         recs = [s.to_dict() for s in self.spots]
         if self.centre is None:
             return recs
-        K, K_sig, ellipse = self.camera_terms()
-        xy = np.array([[s.x, s.y] for s in self.spots], float)
-        R = np.hypot(*ellipse.correct_array(xy - self.centre.xy).T)
-        c_sig = float(np.hypot(self.centre.sigma_x, self.centre.sigma_y)) / np.sqrt(2)
-        for rec, s, r in zip(recs, self.spots, R):
+        source = self._camera_source()
+        offsets = np.array([[s.x, s.y] for s in self.spots], float) - self.centre.xy
+        R = calculate_corrected_radius_array(offsets, getattr(source, "ellipse", None) or NO_DISTORTION)
+        for rec, r in zip(recs, R):
             rec["radius_px"] = float(r)
-            if K is not None and r > 0:
-                s_r = float(np.hypot(np.hypot(s.sigma_x, s.sigma_y) / np.sqrt(2), c_sig))
-                d = K / r
-                rec["d_A"] = d
-                rec["d_sigma_A"] = d * float(np.hypot(s_r / r, K_sig / K))
+        if source is not None:
+            # each spot's position uncertainty and the centre's, per axis
+            sig = np.hypot(np.array([[s.sigma_x, s.sigma_y] for s in self.spots], float),
+                           [self.centre.sigma_x, self.centre.sigma_y])
+            d = calculate_d_from_offset_array(offsets, source)
+            d_sig = calculate_d_sigma_array(offsets, np.nan_to_num(sig), source)
+            for rec, r, di, si in zip(recs, R, d, d_sig):
+                if r > 0:
+                    rec["d_A"] = float(di)
+                    rec["d_sigma_A"] = float(si)
         return recs
 
     def to_dict(self) -> dict:
