@@ -6,6 +6,7 @@ import argparse
 import math
 
 from .. import __version__
+from ..core._validate import finite_or_none
 
 __all__ = ["add_json_option", "software_record", "finite_or_none", "positive_float"]
 
@@ -18,14 +19,6 @@ def add_json_option(parser: argparse.ArgumentParser) -> None:
 def software_record() -> dict:
     """The ``software`` entry of every record."""
     return {"name": "saedkit", "version": __version__}
-
-
-def finite_or_none(x):
-    """x as float, or None when missing or not finite (JSON has no NaN)."""
-    if x is None:
-        return None
-    x = float(x)
-    return x if math.isfinite(x) else None
 
 
 def positive_float(text: str) -> float:

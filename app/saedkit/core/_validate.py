@@ -32,6 +32,14 @@ def check_finite(name: str, value: Any) -> float:
     return v
 
 
+def finite_or_none(x: Any) -> float | None:
+    """``x`` as a float, or None when it is missing or not finite (JSON has no NaN)."""
+    if x is None:
+        return None
+    v = float(x)
+    return v if math.isfinite(v) else None
+
+
 def check_in_range(name: str, value: Any, lo: float, hi: float) -> float:
     """Return ``value`` as a float, or raise if it is outside ``[lo, hi]``."""
     v = check_finite(name, value)

@@ -59,7 +59,7 @@ from functools import lru_cache
 import numpy as np
 from scipy import optimize
 
-from ._validate import check_positive, check_points_xy, check_xy
+from ._validate import check_points_xy, check_positive, check_xy, finite_or_none
 from .centre import CentreResult
 from .crystal import Phase, format_indices
 from .distortion import NO_DISTORTION, Ellipse
@@ -103,13 +103,6 @@ TREND_LIMIT_PCT = 0.1
 #: Apparent Debye–Waller factor (Å²) of observed over expected ring intensities below which
 #: the outer rings are too strong for the standard.
 APPARENT_B_LIMIT_A2 = -1.0
-
-
-def _finite_or_none(x) -> float | None:
-    if x is None:
-        return None
-    x = float(x)
-    return x if math.isfinite(x) else None
 
 
 # --------------------------------------------------------------------------- results
@@ -159,11 +152,11 @@ class RingAssignment:
             "hkl": [int(v) for v in self.hkl],
             "d_A": float(self.d_A),
             "radius_px": float(self.radius_px),
-            "radius_sigma_px": _finite_or_none(self.radius_sigma_px),
+            "radius_sigma_px": finite_or_none(self.radius_sigma_px),
             "residual_px": float(self.residual_px),
             "residual_pct": float(self.residual_pct),
             "multiplicity": int(self.multiplicity),
-            "snr": _finite_or_none(self.snr),
+            "snr": finite_or_none(self.snr),
             "blend_hkl": [[int(v) for v in h] for h in self.blend],
         }
 
@@ -276,25 +269,25 @@ class Calibration:
             "ellipse": {
                 "ellipticity": float(self.ellipse.ellipticity),
                 "major_axis_deg": float(self.ellipse.major_axis_deg),
-                "ellipticity_sigma": _finite_or_none(self.ellipticity_sigma),
-                "major_axis_sigma_deg": _finite_or_none(self.major_axis_sigma_deg),
+                "ellipticity_sigma": finite_or_none(self.ellipticity_sigma),
+                "major_axis_sigma_deg": finite_or_none(self.major_axis_sigma_deg),
             },
             "centre_px": None if c is None else [float(c.x), float(c.y)],
-            "centre_sigma_px": None if c is None else [_finite_or_none(c.sigma_x), _finite_or_none(c.sigma_y)],
+            "centre_sigma_px": None if c is None else [finite_or_none(c.sigma_x), finite_or_none(c.sigma_y)],
             "voltage_kv": float(self.voltage_kv),
             "wavelength_A": float(self.wavelength_A),
-            "pixel_size_um": _finite_or_none(self.pixel_size_um),
-            "camera_length_mm": _finite_or_none(self.camera_length_mm),
-            "camera_length_sigma_mm": _finite_or_none(self.camera_length_sigma_mm),
-            "lambda_L_mm_A": _finite_or_none(self.lambda_L_mm_A),
-            "lambda_L_sigma_mm_A": _finite_or_none(self.lambda_L_sigma_mm_A),
+            "pixel_size_um": finite_or_none(self.pixel_size_um),
+            "camera_length_mm": finite_or_none(self.camera_length_mm),
+            "camera_length_sigma_mm": finite_or_none(self.camera_length_sigma_mm),
+            "lambda_L_mm_A": finite_or_none(self.lambda_L_mm_A),
+            "lambda_L_sigma_mm_A": finite_or_none(self.lambda_L_sigma_mm_A),
             "standard": self.standard,
             "method": self.method,
             "fit": self.fit,
             "exact_camera_equation": bool(self.exact_camera_equation),
             "rings": [r.to_dict() for r in self.rings],
             "unassigned_radii_px": [float(r) for r in self.unassigned_radii_px],
-            "reduced_chi2": _finite_or_none(self.reduced_chi2),
+            "reduced_chi2": finite_or_none(self.reduced_chi2),
             "n_points": int(self.n_points),
             "quality": self.quality,
             "warnings": list(self.warnings),
@@ -1486,7 +1479,6 @@ def calibrate_from_spots(
         K = float(abs(coef[0]))
         sK = float(math.sqrt(max(covc[0, 0], 0.0)))
         ell, sig_e, sig_phi = NO_DISTORTION, 0.0, 0.0
-        theta = float(np.degrees(np.angle(coef[0])))
         tz = coef[1] if fit_t else 0.0
         st = float(math.sqrt(max(covc[1, 1], 0.0))) if fit_t else math.nan
         centre = CentreResult(float(c0[0] + tz.real), float(c0[1] + tz.imag), st, st,

@@ -96,8 +96,8 @@ def _phase_data(phase: Phase, g_cap: float, g_h1_cap: float, voltage_kv: float) 
             continue
         eq = phase.calculate_equivalent_array(h)
         seen.update(map(tuple, eq.tolist()))
-        rep = tuple(canonical_indices(eq).tolist())
-        reps.append(int(np.flatnonzero(np.all(t.hkl == rep, axis=1))[0]) if rep in seen else i)
+        rep = canonical_indices(eq)  # an equivalent, so in the table with the same |g|
+        reps.append(int(np.flatnonzero(np.all(t.hkl == rep, axis=1))[0]))
     return _PhaseData(phase, t.hkl, t.g_per_A, gcart, np.array(reps, dtype=int))
 
 

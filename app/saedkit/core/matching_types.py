@@ -6,12 +6,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ._validate import finite_or_none
+
 __all__ = ["Lattice2D", "IndexedSpot", "PredictedSpot", "ZoneCandidate", "MatchResult"]
-
-
-def _f(x):
-    x = float(x)
-    return x if np.isfinite(x) else None
 
 
 @dataclass(frozen=True)
@@ -62,10 +59,10 @@ class Lattice2D:
             "centre_px": list(self.centre_xy), "centre_sigma_px": list(self.centre_sigma_px),
             "g1_px": list(self.g1_px), "g2_px": list(self.g2_px),
             "r1_px": self.r1_px, "r2_px": self.r2_px, "angle_deg": self.angle_deg,
-            "d1_A": None if self.d1_A is None else _f(self.d1_A),
-            "d2_A": None if self.d2_A is None else _f(self.d2_A),
+            "d1_A": None if self.d1_A is None else finite_or_none(self.d1_A),
+            "d2_A": None if self.d2_A is None else finite_or_none(self.d2_A),
             "n_indexed": int(np.sum(self.inliers)), "n_spots": int(len(self.inliers)),
-            "residual_rms_px": _f(self.residual_rms_px),
+            "residual_rms_px": finite_or_none(self.residual_rms_px),
         }
 
 
@@ -85,9 +82,9 @@ class IndexedSpot:
     def to_dict(self) -> dict:
         return {
             "x": self.x, "y": self.y, "hkl": None if self.hkl is None else list(self.hkl),
-            "d_A": _f(self.d_A), "d_sigma_A": _f(self.d_sigma_A),
-            "d_error_pct": None if self.d_error_pct is None else _f(self.d_error_pct),
-            "position_error_px": None if self.position_error_px is None else _f(self.position_error_px),
+            "d_A": finite_or_none(self.d_A), "d_sigma_A": finite_or_none(self.d_sigma_A),
+            "d_error_pct": None if self.d_error_pct is None else finite_or_none(self.d_error_pct),
+            "position_error_px": None if self.position_error_px is None else finite_or_none(self.position_error_px),
             "double_diffraction": self.forbidden,
         }
 
@@ -135,14 +132,14 @@ class ZoneCandidate:
         return {
             "phase": self.phase, "zone": list(self.zone),
             "zone_four_index": None if self.zone_four_index is None else list(self.zone_four_index),
-            "score": _f(self.score), "d_error_pct": _f(self.d_error_pct),
-            "angle_error_deg": _f(self.angle_error_deg),
-            "in_plane_rotation_deg": _f(self.in_plane_rotation_deg),
-            "camera_constant_px_A": _f(self.camera_constant_px_A),
-            "camera_constant_sigma_px_A": _f(self.camera_constant_sigma_px_A),
-            "fraction_explained": _f(self.fraction_explained), "n_explained": self.n_explained,
+            "score": finite_or_none(self.score), "d_error_pct": finite_or_none(self.d_error_pct),
+            "angle_error_deg": finite_or_none(self.angle_error_deg),
+            "in_plane_rotation_deg": finite_or_none(self.in_plane_rotation_deg),
+            "camera_constant_px_A": finite_or_none(self.camera_constant_px_A),
+            "camera_constant_sigma_px_A": finite_or_none(self.camera_constant_sigma_px_A),
+            "fraction_explained": finite_or_none(self.fraction_explained), "n_explained": self.n_explained,
             "n_spots": self.n_spots, "n_missing_strong": self.n_missing_strong,
-            "residual_px": _f(self.residual_px),
+            "residual_px": finite_or_none(self.residual_px),
             "basis_hkl": [list(h) for h in self.basis_hkl],
             "spots": [s.to_dict() for s in self.spots],
             "predicted": [p.to_dict() for p in self.predicted],
