@@ -47,6 +47,7 @@ from .analysis import Analysis
 from .centre import CentreResult
 from .distortion import NO_DISTORTION, Ellipse
 from .errors import ImageReadError, InputError, SaedkitError
+from .uncertainty import calculate_d_sigma, calculate_radius_sigmas
 
 __all__ = [
     "Session",
@@ -461,26 +462,6 @@ def _cov(sx: float, sy: float) -> np.ndarray:
     return np.diag([sx * sx, sy * sy])
 
 
-def _radius_and_sigmas(v_obs: np.ndarray, cov_obs: np.ndarray, dinv: np.ndarray):
-    """Ideal offset, its length, and the radial and tangential standard uncertainties."""
-    v = dinv @ v_obs
-    r = float(np.hypot(*v))
-    cov = dinv @ cov_obs @ dinv.T
-    if r == 0:
-        return v, 0.0, math.nan, math.nan
-    u = v / r
-    t = np.array([-u[1], u[0]])
-    return v, r, float(np.sqrt(u @ cov @ u)), float(np.sqrt(t @ cov @ t))
-
-
-def _d_from_radius(r: float, sr: float, k: float, sk: float) -> tuple[float, float]:
-    if not (math.isfinite(k) and r > 0):
-        return math.nan, math.nan
-    d = k / r
-    rel = math.hypot(sk / k if k else 0.0, sr / r if math.isfinite(sr) else 0.0)
-    return d, d * rel
-
-
 def find_spot_hkl(spots_xy, candidate, *, centre_xy=None, tolerance_px: float = 3.0,
                   rel_tolerance: float = 0.03) -> list:
     """The (hkl) a zone-axis candidate gives each spot, or None.
@@ -568,11 +549,11 @@ def calculate_spot_measurements(spots: Sequence, centre: CentreResult | None, ca
     for i, s in enumerate(spots):
         if centre is not None:
             cov = _cov(s.sigma_x, s.sigma_y) + _cov(centre.sigma_x, centre.sigma_y)
-            v, r, sr, _ = _radius_and_sigmas(np.array([s.x - centre.x, s.y - centre.y]), cov, dinv)
+            v, r, sr, _ = calculate_radius_sigmas(np.array([s.x - centre.x, s.y - centre.y]), cov, dinv)
             angle = math.degrees(math.atan2(s.y - centre.y, s.x - centre.x))
         else:
             r = sr = angle = math.nan
-        d, sd = _d_from_radius(r, sr, k, sk) if centre is not None else (math.nan, math.nan)
+        d, sd = calculate_d_sigma(r, sr, k, sk) if centre is not None else (math.nan, math.nan)
         out.append(SpotMeasurement(
             index=i, x=float(s.x), y=float(s.y), sigma_x=float(s.sigma_x), sigma_y=float(s.sigma_y),
             radius_px=r, radius_sigma_px=sr, d_A=d, d_sigma_A=sd,
@@ -620,10 +601,10 @@ def calculate_pair_measurement(a_xy, b_xy, *, centre: CentreResult | None = None
     k, sk, ellipse = _camera_terms(calibration)
     dinv = ellipse.inverse_matrix
     cov_a, cov_b = _cov(*a_sigma_px), _cov(*b_sigma_px)
-    v_ab, dist, s_dist, _ = _radius_and_sigmas(a - b, cov_a + cov_b, dinv)
+    v_ab, dist, s_dist, _ = calculate_radius_sigmas(a - b, cov_a + cov_b, dinv)
     if friedel:
         r, sr = dist / 2.0, s_dist / 2.0
-        d, sd = _d_from_radius(r, sr, k, sk)
+        d, sd = calculate_d_sigma(r, sr, k, sk)
         angle = math.degrees(math.atan2(a[1] - b[1], a[0] - b[0]))
         sigma_t = math.nan
         if r > 0:
@@ -632,22 +613,22 @@ def calculate_pair_measurement(a_xy, b_xy, *, centre: CentreResult | None = None
             sigma_t = math.degrees(float(np.sqrt(t @ cov @ t)) / (2 * r))
         return PairMeasurement("friedel", (float(a[0]), float(a[1])), (float(b[0]), float(b[1])),
                                dist, r, sr, d, sd, angle, sigma_t)
-    d, sd = _d_from_radius(dist, s_dist, k, sk)
+    d, sd = calculate_d_sigma(dist, s_dist, k, sk)
     if centre is None:
         return PairMeasurement("pair", (float(a[0]), float(a[1])), (float(b[0]), float(b[1])),
                                dist, math.nan, math.nan, d, sd, math.nan, math.nan)
     c = np.array([centre.x, centre.y])
     cov_c = _cov(centre.sigma_x, centre.sigma_y)
-    va, ra, sra, ta = _radius_and_sigmas(a - c, cov_a + cov_c, dinv)
-    vb, rb, srb, tb = _radius_and_sigmas(b - c, cov_b + cov_c, dinv)
+    va, ra, sra, ta = calculate_radius_sigmas(a - c, cov_a + cov_c, dinv)
+    vb, rb, srb, tb = calculate_radius_sigmas(b - c, cov_b + cov_c, dinv)
     if ra > 0 and rb > 0:
         cosang = float(np.clip(va @ vb / (ra * rb), -1.0, 1.0))
         angle = math.degrees(math.acos(cosang))
         sang = math.degrees(math.hypot(ta / ra, tb / rb))
     else:
         angle = sang = math.nan
-    da, sda = _d_from_radius(ra, sra, k, sk)
-    db, sdb = _d_from_radius(rb, srb, k, sk)
+    da, sda = calculate_d_sigma(ra, sra, k, sk)
+    db, sdb = calculate_d_sigma(rb, srb, k, sk)
     return PairMeasurement("pair", (float(a[0]), float(a[1])), (float(b[0]), float(b[1])),
                            dist, math.nan, math.nan, d, sd, angle, sang,
                            (ra, rb), (sra, srb), (da, db), (sda, sdb))

@@ -27,6 +27,7 @@ import numpy as np
 
 from ..core._atomic import write_text_atomic
 from ..core.errors import InputError
+from ..core.uncertainty import calculate_d_sigma, calculate_radius_sigmas
 from ._common import (
     CentreInfo,
     finite,
@@ -157,25 +158,13 @@ def _radius(x: float, y: float, sx: float, sy: float, centre: CentreInfo | None,
     if centre is None or not (math.isfinite(x) and math.isfinite(y)):
         return math.nan, math.nan, math.nan
     v_obs = np.array([x - centre.x, y - centre.y])
-    v = dinv @ v_obs
-    r = float(np.hypot(*v))
     cov = np.diag([
         (sx if math.isfinite(sx) else 0.0) ** 2 + centre.sigma_x**2,
         (sy if math.isfinite(sy) else 0.0) ** 2 + centre.sigma_y**2,
     ])
-    cov = dinv @ cov @ dinv.T
-    sr = float(np.sqrt((v / r) @ cov @ (v / r))) if r > 0 else math.nan
+    _, r, sr, _ = calculate_radius_sigmas(v_obs, cov, dinv)
     angle = math.degrees(math.atan2(v_obs[1], v_obs[0]))
     return r, sr, angle
-
-
-def _d_from_radius(r: float, sr: float, k: float | None, sk: float | None) -> tuple[float, float]:
-    """``d = K / R`` and ``σd/d = √((σK/K)² + (σR/R)²)`` (first-order propagation)."""
-    if k is None or not (math.isfinite(r) and r > 0):
-        return math.nan, math.nan
-    d = k / r
-    rel = math.hypot((sk or 0.0) / k, sr / r if math.isfinite(sr) else 0.0)
-    return d, d * rel
 
 
 def _g(d: float, sd: float) -> tuple[float, float]:
@@ -264,7 +253,7 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
             d_err = _nan(own.d_error_pct)
             dd = bool(getattr(own, "forbidden", False)) if hkl is not None else None
         else:
-            d, sd = _d_from_radius(r, sr, k, sk)
+            d, sd = calculate_d_sigma(r, sr, k, sk)
             p = _nearest_predicted(cand, x, y, r) if cand is not None else None
             if p is not None:
                 hkl = tuple(int(v) for v in p.hkl)
@@ -297,7 +286,7 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
                            key=lambda a: float(a.radius_px))
     for i, ring in enumerate(ring_list):
         r, sr = _nan(ring.radius_px), _nan(getattr(ring, "radius_sigma_px", None))
-        d, sd = _d_from_radius(r, sr, kr, skr)
+        d, sd = calculate_d_sigma(r, sr, kr, skr)
         hkl, d_err, phase = None, math.nan, ""
         if assigned:
             a = min(assigned, key=lambda a: abs(float(a.radius_px) - r))
