@@ -3,6 +3,15 @@
 import pytest
 
 
+@pytest.fixture(autouse=True)
+def _no_blocking_dialogs(monkeypatch):
+    """Modal questions answer 'Discard'/'Yes' at once so closing a window never blocks."""
+    from PySide6.QtWidgets import QMessageBox
+
+    monkeypatch.setattr(QMessageBox, "question",
+                        staticmethod(lambda *a, **k: QMessageBox.StandardButton.Discard))
+
+
 @pytest.fixture
 def window(qtbot):
     from saedkit.gui.main_window import MainWindow

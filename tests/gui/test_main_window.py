@@ -27,13 +27,6 @@ REPO = Path(__file__).resolve().parents[2]
 K_SI = 380.0
 
 
-@pytest.fixture(autouse=True)
-def _no_blocking_dialogs(monkeypatch):
-    """Modal questions answer 'Discard'/'Yes' at once so closing a window never blocks."""
-    monkeypatch.setattr(QMessageBox, "question",
-                        staticmethod(lambda *a, **k: QMessageBox.StandardButton.Discard))
-
-
 @pytest.fixture(scope="module")
 def si_file(tmp_path_factory):
     """Si [011] (384 px, beam stop) with its truth: the right answer is a <011> zone of Si."""
