@@ -35,9 +35,9 @@ SIDE = 4096
 
 def _pattern(folder: Path) -> tuple[Path, tuple[float, float], float]:
     from saedkit.core.imageio import write_tiff
-    from saedkit.core.library import find_phase
-    from saedkit.core.render import BeamStop
-    from saedkit.core.simulate import simulate_spot_pattern
+    from saedkit.core.crystallography.library import find_phase
+    from saedkit.core.simulation.render import BeamStop
+    from saedkit.core.simulation.simulate import simulate_spot_pattern
 
     k = 1500.0
     img, truth = simulate_spot_pattern(find_phase("Si"), (0, 1, 1), shape=(SIDE, SIDE), camera_constant_px_A=k,
@@ -64,7 +64,7 @@ def main() -> int:
     from PySide6.QtCore import QElapsedTimer, QTimer
     from PySide6.QtGui import QImage, QPixmap
 
-    from saedkit.core.centre import manual_centre
+    from saedkit.core.detection.centre import manual_centre
     from saedkit.core.imageio import read_pattern
     from saedkit.gui.app import make_application
     from saedkit.gui.display import DisplaySettings, calculate_display_image

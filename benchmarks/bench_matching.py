@@ -12,10 +12,10 @@ from __future__ import annotations
 import numpy as np
 from _timing import best_of
 
-from saedkit.core.library import LIBRARY, find_phase
-from saedkit.core import matching
-from saedkit.core.matching import match_zone_axes
-from saedkit.core.simulate import simulate_spot_pattern
+from saedkit.core.crystallography.library import LIBRARY, find_phase
+from saedkit.core.indexing import matching
+from saedkit.core.indexing.matching import match_zone_axes
+from saedkit.core.simulation.simulate import simulate_spot_pattern
 
 
 

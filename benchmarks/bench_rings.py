@@ -20,8 +20,8 @@ import numpy as np
 from _timing import best_of
 
 from saedkit.core.distortion import Ellipse
-from saedkit.core.render import BeamStop, render_pattern
-from saedkit.core.rings import calculate_radial_profile, find_rings
+from saedkit.core.simulation.render import BeamStop, render_pattern
+from saedkit.core.detection.rings import calculate_radial_profile, find_rings
 
 SIZE = 4096
 TARGET_PROFILE_RATIO = 3.0

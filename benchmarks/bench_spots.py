@@ -25,8 +25,8 @@ from _timing import best_of
 from scipy import ndimage as ndi
 from scipy.spatial import cKDTree
 
-from saedkit.core.render import BeamStop, render_pattern
-from saedkit.core.spots import find_spots, spots_xy_array
+from saedkit.core.simulation.render import BeamStop, render_pattern
+from saedkit.core.detection.spots import find_spots, spots_xy_array
 
 SIZE = 4096
 SPOT_SIGMA_PX = 2.0

@@ -17,7 +17,7 @@ assert not bad, bad
 @pytest.mark.parametrize(
     "imports",
     [
-        "import saedkit.core.crystal, saedkit.core.structure_factors, saedkit.core.library, saedkit.core.optics",
+        "import saedkit.core.crystallography.crystal, saedkit.core.crystallography.structure_factors, saedkit.core.crystallography.library, saedkit.core.optics",
         "from saedkit.cli import main\nmain(['phases', '--json'])",
         "import saedkit.cli; saedkit.cli.build_parser().parse_args(['phases'])",
     ],

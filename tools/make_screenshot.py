@@ -28,9 +28,9 @@ def _simulated_pattern(folder: Path) -> tuple[Path, float, tuple[float, float]]:
 
     from saedkit.core.distortion import Ellipse
     from saedkit.core.imageio import write_tiff
-    from saedkit.core.library import find_phase
-    from saedkit.core.render import BeamStop
-    from saedkit.core.simulate import simulate_spot_pattern
+    from saedkit.core.crystallography.library import find_phase
+    from saedkit.core.simulation.render import BeamStop
+    from saedkit.core.simulation.simulate import simulate_spot_pattern
 
     k = 420.0
     img, truth = simulate_spot_pattern(find_phase("Si"), (0, 1, 1), shape=(640, 640), camera_constant_px_A=k,
@@ -45,7 +45,7 @@ def make_screenshot(out: str | os.PathLike, *, simulated: bool = False, size: tu
     """Render the window (pattern, calibration, best candidate's grid) to ``out``; returns the path."""
     if not os.environ.get("DISPLAY") and not os.environ.get("WAYLAND_DISPLAY"):
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
-    from saedkit.core.centre import manual_centre
+    from saedkit.core.detection.centre import manual_centre
     from saedkit.gui.app import make_application
     from saedkit.gui.main_window import MainWindow
 

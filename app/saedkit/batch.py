@@ -1,7 +1,7 @@
 """Many patterns at once, on Dask.
 
 Each pattern is analysed independently (centre, spots, zone-axis match — or
-rings and calibration) by :mod:`saedkit.core.pipeline`; Dask runs them in
+rings and calibration) by :mod:`saedkit.core.workflow.pipeline`; Dask runs them in
 parallel on the local machine (threads or processes) or on a running
 ``dask.distributed`` cluster. A failure in one pattern is recorded with its
 message and never stops the others. The summary is one CSV row per pattern,
@@ -57,9 +57,9 @@ def _summarise(analysis) -> dict:
 
 def _analyse_one(path: str, options: dict, out_dir: str | None, bundle: bool) -> BatchItem:
     # runs in a worker: import here, catch expected failures, return plain data
-    from .core.errors import SaedkitError
-    from .core.imageio import read_pattern
-    from .core.pipeline import analyse_ring_pattern, analyse_spot_pattern
+    from saedkit.core.errors import SaedkitError
+    from saedkit.core.imageio import read_pattern
+    from saedkit.core.workflow.pipeline import analyse_ring_pattern, analyse_spot_pattern
 
     try:
         image = read_pattern(path)
@@ -79,12 +79,12 @@ def _analyse_one(path: str, options: dict, out_dir: str | None, bundle: bool) ->
     if out_dir is not None:
         stem = Path(path).stem
         if bundle:
-            from .report import write_report_bundle
+            from saedkit.report import write_report_bundle
 
             files = write_report_bundle(analysis, Path(out_dir) / stem)
             record_path = str(files.get("json"))
         else:
-            from .report import write_analysis_json
+            from saedkit.report import write_analysis_json
 
             record_path = str(write_analysis_json(analysis, Path(out_dir) / f"{stem}.json"))
     return BatchItem(str(path), True, "", _summarise(analysis), record_path)
@@ -157,7 +157,7 @@ SUMMARY_FIELDS = ["path", "ok", "error", "phase", "zone", "score", "d_error_pct"
 
 def write_batch_summary(items: Sequence[BatchItem], path: str | os.PathLike) -> Path:
     """One CSV row per pattern (atomic write)."""
-    from .core._atomic import write_text_atomic
+    from saedkit.core._atomic import write_text_atomic
 
     buf = io.StringIO()
     w = csv.DictWriter(buf, fieldnames=SUMMARY_FIELDS, extrasaction="ignore")

@@ -20,9 +20,9 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 from typing import Sequence
 
-from . import __version__
-from ._commands import COMMAND_MODULES
-from .core.errors import SaedkitError
+from saedkit import __version__
+from saedkit._commands import COMMAND_MODULES
+from saedkit.core.errors import SaedkitError
 
 __all__ = ["main", "build_parser"]
 

@@ -12,7 +12,7 @@ operator records
 The instrument's true camera constant is 2.7 % above the nominal one and the
 projector lens adds 1.2 % of elliptical distortion at 35°, so the film must
 be calibrated before the grains are measured. Everything here is simulated
-with :mod:`saedkit.core.simulate`; the true values are written beside the
+with :mod:`saedkit.core.simulation.simulate`; the true values are written beside the
 images (``*.truth.json``) so the demo can be checked.
 """
 
@@ -59,7 +59,7 @@ class DemoFiles:
 
 
 def _true_camera_constant() -> float:
-    from .core.optics import calculate_camera_constant_px_A
+    from saedkit.core.optics import calculate_camera_constant_px_A
 
     return calculate_camera_constant_px_A(
         DEMO.nominal_camera_length_mm * DEMO.camera_length_error, DEMO.pixel_size_um, DEMO.voltage_kv)
@@ -69,11 +69,11 @@ def write_demo_patterns(folder: str | os.PathLike) -> DemoFiles:
     """Simulate the three demo patterns into ``folder`` (compressed TIFF) with their truth."""
     import numpy as np
 
-    from .core.distortion import Ellipse
-    from .core.imageio import write_tiff
-    from .core.library import find_phase
-    from .core.render import BeamStop, Detector
-    from .core.simulate import simulate_ring_pattern, simulate_spot_pattern
+    from saedkit.core.distortion import Ellipse
+    from saedkit.core.imageio import write_tiff
+    from saedkit.core.crystallography.library import find_phase
+    from saedkit.core.simulation.render import BeamStop, Detector
+    from saedkit.core.simulation.simulate import simulate_ring_pattern, simulate_spot_pattern
 
     out = Path(folder)
     out.mkdir(parents=True, exist_ok=True)
@@ -141,12 +141,12 @@ def ensure_demo_files(folder: str | os.PathLike | None = None, *, calibrate: boo
 
 def ensure_demo_calibration(files: DemoFiles):
     """Calibrate the demo film against Au and save it in the library unless it is there already."""
-    from .core.calibration import calibrate_from_rings
-    from .core.calibration_library import CalibrationLibrary, SavedCalibration
-    from .core.errors import LibraryError
-    from .core.imageio import read_pattern
-    from .core.library import find_phase
-    from .core.masks import find_auto_mask
+    from saedkit.core.calibration.calibrate import calibrate_from_rings
+    from saedkit.core.calibration.library import CalibrationLibrary, SavedCalibration
+    from saedkit.core.errors import LibraryError
+    from saedkit.core.imageio import read_pattern
+    from saedkit.core.crystallography.library import find_phase
+    from saedkit.core.detection.masks import find_auto_mask
 
     lib = CalibrationLibrary()
     try:

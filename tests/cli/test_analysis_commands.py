@@ -10,10 +10,10 @@ import pytest
 
 from saedkit.cli import main
 from saedkit.core.imageio import write_tiff
-from saedkit.core.library import find_phase
-from saedkit.core.render import BeamStop
-from saedkit.core.simulate import simulate_ring_pattern, simulate_spot_pattern
-from saedkit.core.structure_factors import canonical_indices
+from saedkit.core.crystallography.library import find_phase
+from saedkit.core.simulation.render import BeamStop
+from saedkit.core.simulation.simulate import simulate_ring_pattern, simulate_spot_pattern
+from saedkit.core.crystallography.structure_factors import canonical_indices
 
 K_TRUE = 300.0
 

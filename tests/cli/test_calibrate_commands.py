@@ -12,9 +12,9 @@ import pytest
 from saedkit.cli import main
 from saedkit.core.distortion import Ellipse
 from saedkit.core.imageio import write_tiff
-from saedkit.core.library import find_phase
-from saedkit.core.render import BeamStop
-from saedkit.core.simulate import simulate_ring_pattern, simulate_spot_pattern
+from saedkit.core.crystallography.library import find_phase
+from saedkit.core.simulation.render import BeamStop
+from saedkit.core.simulation.simulate import simulate_ring_pattern, simulate_spot_pattern
 
 K_TRUE = 270.0
 ELLIPSE = Ellipse(0.015, 40.0)
@@ -155,7 +155,7 @@ def test_errors_in_process(film, tmp_path, capsys):
     assert main(["calibrations", "history"]) == 1
     capsys.readouterr()
     # a broken library: reported, not replaced
-    from saedkit.core.calibration_library import CalibrationLibrary
+    from saedkit.core.calibration.library import CalibrationLibrary
 
     lib = CalibrationLibrary()
     lib.path.parent.mkdir(parents=True, exist_ok=True)

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 
 from saedkit.cli import main
-from saedkit.core.library import find_phase
-from saedkit.core.structure_factors import canonical_indices
+from saedkit.core.crystallography.library import find_phase
+from saedkit.core.crystallography.structure_factors import canonical_indices
 
 SAMPLES = Path(__file__).resolve().parents[2] / "sample_patterns"
 

@@ -6,10 +6,10 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from saedkit.core.crystal import UnitCell, from_four_index_direction, to_four_index_direction
+from saedkit.core.crystallography.crystal import UnitCell, from_four_index_direction, to_four_index_direction
 from saedkit.core.distortion import Ellipse
 from saedkit.core.errors import CrystalError
-from saedkit.core.lattice2d import reduce_basis_2d
+from saedkit.core.indexing.lattice2d import reduce_basis_2d
 from saedkit.core.optics import calculate_d_A, calculate_radius_px
 
 FAST = settings(max_examples=60, deadline=None)

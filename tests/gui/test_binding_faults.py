@@ -20,10 +20,10 @@ pytestmark = pytest.mark.gui
 
 from PySide6.QtWidgets import QApplication  # noqa: E402
 
-from saedkit.core.centre import manual_centre  # noqa: E402
-from saedkit.core.library import find_phase  # noqa: E402
-from saedkit.core.render import BeamStop  # noqa: E402
-from saedkit.core.simulate import simulate_spot_pattern  # noqa: E402
+from saedkit.core.detection.centre import manual_centre  # noqa: E402
+from saedkit.core.crystallography.library import find_phase  # noqa: E402
+from saedkit.core.simulation.render import BeamStop  # noqa: E402
+from saedkit.core.simulation.simulate import simulate_spot_pattern  # noqa: E402
 from saedkit.core.imageio import write_tiff  # noqa: E402
 
 

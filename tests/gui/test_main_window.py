@@ -17,11 +17,11 @@ pytestmark = pytest.mark.gui
 from PySide6.QtCore import QPointF, Qt  # noqa: E402
 from PySide6.QtWidgets import QApplication, QFileDialog, QMessageBox  # noqa: E402
 
-from saedkit.core.centre import manual_centre  # noqa: E402
+from saedkit.core.detection.centre import manual_centre  # noqa: E402
 from saedkit.core.imageio import write_tiff  # noqa: E402
-from saedkit.core.library import find_phase  # noqa: E402
-from saedkit.core.render import BeamStop  # noqa: E402
-from saedkit.core.simulate import simulate_ring_pattern, simulate_spot_pattern  # noqa: E402
+from saedkit.core.crystallography.library import find_phase  # noqa: E402
+from saedkit.core.simulation.render import BeamStop  # noqa: E402
+from saedkit.core.simulation.simulate import simulate_ring_pattern, simulate_spot_pattern  # noqa: E402
 
 REPO = Path(__file__).resolve().parents[2]
 K_SI = 380.0
@@ -89,7 +89,7 @@ def test_find_spots_and_search_si_011(window, open_pattern, si_file):
 
 
 def test_calibrate_on_a_gold_ring_pattern(window, open_pattern, tmp_path):
-    pytest.importorskip("saedkit.core.calibration")
+    pytest.importorskip("saedkit.core.calibration.calibrate")
     k_true = 300.0
     img, truth = simulate_ring_pattern(find_phase("Au"), shape=(512, 512), camera_constant_px_A=k_true,
                                        beam_stop=BeamStop(angle_deg=70.0), rng=np.random.default_rng(8))
@@ -226,7 +226,7 @@ def test_a_search_without_candidates_says_so(window, open_pattern, si_file):
 
 
 def test_autosave_and_recovery(open_pattern, qtbot, window, si_file):
-    from saedkit.core.session import autosave_path, find_leftover_autosave
+    from saedkit.core.workflow.session import autosave_path, find_leftover_autosave
     from saedkit.gui.main_window import MainWindow
 
     path, truth = si_file
@@ -326,8 +326,8 @@ def test_drop_readout_recent_files_preferences_and_a_typed_phase(window, si_file
     from PySide6.QtCore import QMimeData, QPoint, QUrl
     from PySide6.QtGui import QDropEvent
 
-    from saedkit.core.crystal import make_phase
-    from saedkit.core.session import SessionSettings
+    from saedkit.core.crystallography.crystal import make_phase
+    from saedkit.core.workflow.session import SessionSettings
     from saedkit.gui import settings as app_prefs
 
     path, truth = si_file

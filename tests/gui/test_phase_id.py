@@ -13,9 +13,9 @@ pytestmark = pytest.mark.gui
 from PySide6.QtWidgets import QMessageBox  # noqa: E402
 
 from saedkit.core.imageio import write_tiff  # noqa: E402
-from saedkit.core.library import find_phase  # noqa: E402
-from saedkit.core.session import Session  # noqa: E402
-from saedkit.core.simulate import simulate_ring_pattern  # noqa: E402
+from saedkit.core.crystallography.library import find_phase  # noqa: E402
+from saedkit.core.workflow.session import Session  # noqa: E402
+from saedkit.core.simulation.simulate import simulate_ring_pattern  # noqa: E402
 
 K_AL = 250.0
 

@@ -5,18 +5,18 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from saedkit.core.analysis import Analysis
-from saedkit.core.calibration import calibrate_from_rings
-from saedkit.core.calibration_library import SavedCalibration
-from saedkit.core.centre import CentreResult
+from saedkit.core.workflow.analysis import Analysis
+from saedkit.core.calibration.calibrate import calibrate_from_rings
+from saedkit.core.calibration.library import SavedCalibration
+from saedkit.core.detection.centre import CentreResult
 from saedkit.core.distortion import Ellipse
-from saedkit.core.identify import identify_phases
+from saedkit.core.indexing.identify import identify_phases
 from saedkit.core.imageio import pattern_from_array
-from saedkit.core.library import find_phase
-from saedkit.core.matching import match_zone_axes
-from saedkit.core.rings import find_rings
-from saedkit.core.simulate import simulate_ring_pattern, simulate_spot_pattern
-from saedkit.core.spots import find_spots, spots_xy_array
+from saedkit.core.crystallography.library import find_phase
+from saedkit.core.indexing.matching import match_zone_axes
+from saedkit.core.detection.rings import find_rings
+from saedkit.core.simulation.simulate import simulate_ring_pattern, simulate_spot_pattern
+from saedkit.core.detection.spots import find_spots, spots_xy_array
 
 
 @pytest.fixture(scope="session")

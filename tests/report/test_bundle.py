@@ -7,7 +7,7 @@ import json
 import pypdf
 import pytest
 
-from saedkit.core.analysis import Analysis
+from saedkit.core.workflow.analysis import Analysis
 from saedkit.core.errors import InputError
 from saedkit.report import read_measurements_csv, write_report_bundle
 

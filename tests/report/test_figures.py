@@ -12,7 +12,7 @@ import xml.etree.ElementTree as ET
 import numpy as np
 import pytest
 
-from saedkit.core.analysis import Analysis
+from saedkit.core.workflow.analysis import Analysis
 from saedkit.core.errors import InputError
 from saedkit.report import (
     OVERLAYS,
@@ -179,7 +179,7 @@ def test_failed_figure_write_leaves_no_file(spot_analysis, tmp_path, monkeypatch
 def test_rendering_never_imports_pyplot(tmp_path):
     code = f"""
 import sys, numpy as np
-from saedkit.core.analysis import Analysis
+from saedkit.core.workflow.analysis import Analysis
 from saedkit.core.imageio import pattern_from_array
 from saedkit.report import write_pattern_figure, write_pdf_report
 img = pattern_from_array(np.random.default_rng(0).poisson(20, (96, 96)))

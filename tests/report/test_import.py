@@ -23,7 +23,7 @@ def test_import_report_does_not_import_matplotlib():
 def test_tables_are_written_without_matplotlib(tmp_path):
     res = _run(f"""
 import sys, numpy as np
-from saedkit.core.analysis import Analysis
+from saedkit.core.workflow.analysis import Analysis
 from saedkit.core.imageio import pattern_from_array
 from saedkit.report import write_measurements_csv, write_analysis_json, read_measurements_csv
 a = Analysis(image=pattern_from_array(np.arange(256.0).reshape(16, 16)))

@@ -10,8 +10,8 @@ import pypdf
 import pytest
 
 from saedkit import __version__
-from saedkit.core.analysis import Analysis
-from saedkit.core.spots import Spot
+from saedkit.core.workflow.analysis import Analysis
+from saedkit.core.detection.spots import Spot
 from saedkit.report import CAUTION, write_pdf_report
 from saedkit.report.pdf import TABLE_ROWS_FIRST_PAGE, TABLE_ROWS_PER_PAGE, plan_pdf_pages
 

@@ -12,11 +12,11 @@ import numpy as np
 import pytest
 
 from saedkit import __version__
-from saedkit.core.analysis import Analysis
-from saedkit.core.centre import CentreResult
+from saedkit.core.workflow.analysis import Analysis
+from saedkit.core.detection.centre import CentreResult
 from saedkit.core.distortion import Ellipse
 from saedkit.core.errors import InputError, SaedkitError
-from saedkit.core.spots import Spot
+from saedkit.core.detection.spots import Spot
 from saedkit.report import (
     calculate_measurement_table,
     read_measurements_csv,

@@ -10,7 +10,7 @@ from __future__ import annotations
 import argparse
 import math
 
-from ._common import positive_float
+from saedkit._commands._common import positive_float
 
 __all__ = ["add_calibration_options", "resolve_calibration_options", "calibration_source_record"]
 
@@ -55,7 +55,7 @@ def add_calibration_options(parser: argparse.ArgumentParser, *, required: bool =
 def resolve_calibration_options(args):
     """``(K, K_sigma, Ellipse, source)`` from the parsed options, or None when neither was given.
 
-    ``source`` is the :class:`~saedkit.core.calibration_library.SavedCalibration`
+    ``source`` is the :class:`~saedkit.core.calibration.library.SavedCalibration`
     for ``--calibration`` and the text ``"entered on the command line"`` for
     ``--camera-constant``.
 
@@ -66,8 +66,8 @@ def resolve_calibration_options(args):
     InputError
         When ``--camera-constant-sigma`` comes without ``--camera-constant``.
     """
-    from ..core.distortion import NO_DISTORTION
-    from ..core.errors import InputError
+    from saedkit.core.distortion import NO_DISTORTION
+    from saedkit.core.errors import InputError
 
     K = getattr(args, "camera_constant", None)
     name = getattr(args, "calibration", None)
@@ -77,7 +77,7 @@ def resolve_calibration_options(args):
     if K is not None:
         return float(K), float(sigma or 0.0), NO_DISTORTION, ENTERED
     if name:
-        from ..core.calibration_library import resolve_calibration
+        from saedkit.core.calibration.library import resolve_calibration
 
         cal = resolve_calibration(name)
         return float(cal.camera_constant_px_A), float(cal.camera_constant_sigma_px_A), cal.ellipse, cal

@@ -5,8 +5,8 @@ from __future__ import annotations
 import argparse
 import math
 
-from .. import __version__
-from ..core._validate import finite_or_none
+from saedkit import __version__
+from saedkit.core._validate import finite_or_none
 
 __all__ = ["add_json_option", "software_record", "finite_or_none", "positive_float"]
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ._common import positive_float
+from saedkit._commands._common import positive_float
 
 
 def add_match_options(parser, *, phases_required: bool = True) -> None:
@@ -24,7 +24,7 @@ def add_match_options(parser, *, phases_required: bool = True) -> None:
 
 def resolve_phases(names) -> list:
     """Phases from library names or CIF paths."""
-    from ..core.library import find_phase
+    from saedkit.core.crystallography.library import find_phase
 
     return [find_phase(n) for n in (names or [])]
 
@@ -39,7 +39,7 @@ def _pad(text: str, width: int) -> str:
 
 def describe_candidates(match, *, top: int) -> list[str]:
     """Human-readable lines for the ranked candidates."""
-    from ..core.crystal import format_indices
+    from saedkit.core.crystallography.crystal import format_indices
 
     lines = [f"{'#':>2} {'phase':6s} {'zone':14s} {'score':>6s} {'d err %':>8s} {'ang err°':>8s} {'rot°':>7s} "
              f"{'K (px·Å)':>9s} {'explained':>9s}"]

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import argparse
 
-from ._calib_options import add_calibration_options, resolve_calibration_options
-from ._common import add_json_option, software_record
-from ._index_options import add_match_options, resolve_phases
+from saedkit._commands._calib_options import add_calibration_options, resolve_calibration_options
+from saedkit._commands._common import add_json_option, software_record
+from saedkit._commands._index_options import add_match_options, resolve_phases
 
 EXAMPLES = """\
 examples:
@@ -38,9 +38,9 @@ def register(sub) -> None:
 
 
 def run(args):
-    from ..batch import run_batch, write_batch_summary
-    from ..core.errors import InputError
-    from ..core.library import find_phase
+    from saedkit.batch import run_batch, write_batch_summary
+    from saedkit.core.errors import InputError
+    from saedkit.core.crystallography.library import find_phase
 
     if bool(args.standard) == bool(args.phase):
         raise InputError("give --phase (spot patterns to index) or --standard (ring standards), one of the two")

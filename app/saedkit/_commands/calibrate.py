@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ._common import add_json_option, finite_or_none, positive_float, software_record
+from saedkit._commands._common import add_json_option, finite_or_none, positive_float, software_record
 
 _EPILOG = """\
 examples:
@@ -77,13 +77,13 @@ def register(sub) -> None:
 def run(args):
     import numpy as np
 
-    from ..core.calibration import calibrate_from_rings
-    from ..core.calibration_library import CalibrationLibrary, SavedCalibration
-    from ..core.crystal import format_indices
-    from ..core.errors import InputError
-    from ..core.imageio import read_pattern
-    from ..core.library import find_phase
-    from ..core.masks import find_auto_mask
+    from saedkit.core.calibration.calibrate import calibrate_from_rings
+    from saedkit.core.calibration.library import CalibrationLibrary, SavedCalibration
+    from saedkit.core.crystallography.crystal import format_indices
+    from saedkit.core.errors import InputError
+    from saedkit.core.imageio import read_pattern
+    from saedkit.core.crystallography.library import find_phase
+    from saedkit.core.detection.masks import find_auto_mask
 
     phase = find_phase(args.standard)
     image = read_pattern(args.image)
@@ -95,7 +95,7 @@ def run(args):
         raise InputError("--save needs a non-empty name")
     mask = np.asarray(image.mask, bool) | find_auto_mask(image.data, saturation_value=image.saturation_value)
     if args.spots:
-        from ..core.pipeline import calibrate_spot_standard
+        from saedkit.core.workflow.pipeline import calibrate_spot_standard
 
         cal = calibrate_spot_standard(image, phase, voltage_kv=kv, zone=args.zone, pixel_size_um=px, mask=mask,
                                       fit_ellipse=not args.no_ellipse)

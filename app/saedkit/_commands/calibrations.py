@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ._common import add_json_option, positive_float, software_record
+from saedkit._commands._common import add_json_option, positive_float, software_record
 
 _EPILOG = """\
 examples:
@@ -53,8 +53,8 @@ def _summary_line(c) -> str:
 
 
 def run(args):
-    from ..core.calibration_library import CalibrationLibrary, resolve_calibration
-    from ..core.errors import InputError
+    from saedkit.core.calibration.library import CalibrationLibrary, resolve_calibration
+    from saedkit.core.errors import InputError
 
     action = args.action
     want = _ACTIONS[action]

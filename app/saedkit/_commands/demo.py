@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ._common import add_json_option, software_record
+from saedkit._commands._common import add_json_option, software_record
 
 EXAMPLES = """\
 examples:
@@ -28,11 +28,11 @@ def register(sub) -> None:
 def run(args):
     from pathlib import Path
 
-    from ..core.imageio import read_pattern
-    from ..core.library import find_phase
-    from ..core.pipeline import analyse_ring_pattern, analyse_spot_pattern
-    from ..demo import ensure_demo_calibration, write_demo_patterns
-    from ..report import write_report_bundle
+    from saedkit.core.imageio import read_pattern
+    from saedkit.core.crystallography.library import find_phase
+    from saedkit.core.workflow.pipeline import analyse_ring_pattern, analyse_spot_pattern
+    from saedkit.demo import ensure_demo_calibration, write_demo_patterns
+    from saedkit.report import write_report_bundle
 
     out = Path(args.out)
     files = write_demo_patterns(out / "patterns")

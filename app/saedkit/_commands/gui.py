@@ -34,7 +34,7 @@ def _check_screen() -> None:
         return
     if os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY"):
         return
-    from ..core.errors import SaedkitError
+    from saedkit.core.errors import SaedkitError
 
     raise SaedkitError("no screen to open the window on (neither DISPLAY nor WAYLAND_DISPLAY is set): "
                        "run it on a desktop, under Xvfb, or use the command line (e.g. `saedkit demo`)")
@@ -42,14 +42,14 @@ def _check_screen() -> None:
 
 def run(args) -> int:
     if args.file and args.demo:
-        from ..core.errors import InputError
+        from saedkit.core.errors import InputError
 
         raise InputError("give a FILE or --demo, not both")
     _check_screen()
     try:
-        from ..gui.app import run as run_gui
+        from saedkit.gui.app import run as run_gui
     except ImportError as exc:  # e.g. PySide6 missing or no display libraries
-        from ..core.errors import SaedkitError
+        from saedkit.core.errors import SaedkitError
 
         raise SaedkitError(f"the desktop program cannot start: {exc}") from None
     return int(run_gui(args.file, demo=bool(args.demo)) or 0)

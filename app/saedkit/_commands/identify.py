@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import argparse
 
-from ._calib_options import add_calibration_options, resolve_calibration_options
-from ._common import add_json_option, positive_float, software_record
+from saedkit._commands._calib_options import add_calibration_options, resolve_calibration_options
+from saedkit._commands._common import add_json_option, positive_float, software_record
 
 EXAMPLES = """\
 examples:
@@ -31,9 +31,9 @@ def register(sub) -> None:
 
 
 def run(args):
-    from ..core.imageio import read_pattern
-    from ..core.library import LIBRARY, find_phase
-    from ..core.pipeline import analyse_ring_pattern
+    from saedkit.core.imageio import read_pattern
+    from saedkit.core.crystallography.library import LIBRARY, find_phase
+    from saedkit.core.workflow.pipeline import analyse_ring_pattern
 
     names = args.phase or [e.name for e in LIBRARY]
     phases = [find_phase(n) for n in names]

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import argparse
 
-from ._calib_options import add_calibration_options, resolve_calibration_options
-from ._common import add_json_option, software_record
-from ._index_options import add_match_options, describe_candidates, resolve_phases
+from saedkit._commands._calib_options import add_calibration_options, resolve_calibration_options
+from saedkit._commands._common import add_json_option, software_record
+from saedkit._commands._index_options import add_match_options, describe_candidates, resolve_phases
 
 EXAMPLES = """\
 examples:
@@ -32,8 +32,8 @@ def register(sub) -> None:
 
 def run_analysis(args):
     """The Analysis behind `index` (shared with `report`)."""
-    from ..core.imageio import read_pattern
-    from ..core.pipeline import analyse_spot_pattern
+    from saedkit.core.imageio import read_pattern
+    from saedkit.core.workflow.pipeline import analyse_spot_pattern
 
     phases = resolve_phases(args.phase)
     image = read_pattern(args.image)

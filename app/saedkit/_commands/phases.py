@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ._common import add_json_option, software_record
+from saedkit._commands._common import add_json_option, software_record
 
 
 def register(sub) -> None:
@@ -23,14 +23,14 @@ def register(sub) -> None:
 
 
 def run(args):
-    from ..core.library import LIBRARY, find_phase, list_library
-    from ..core.structure_factors import calculate_ring_families
+    from saedkit.core.crystallography.library import LIBRARY, find_phase, list_library
+    from saedkit.core.crystallography.structure_factors import calculate_ring_families
 
     if args.phase:
         phase = find_phase(args.phase)
         rings = calculate_ring_families(phase, d_min_A=args.d_min)
         rec = {"software": software_record(), "phase": phase.to_dict(), "rings": [r.to_dict() for r in rings]}
-        from ..core.crystal import format_indices
+        from saedkit.core.crystallography.crystal import format_indices
 
         lines = [f"{phase.name}  {phase.space_group.hm} (No. {phase.space_group.number})  "
                  f"a={phase.cell.a:.5g} b={phase.cell.b:.5g} c={phase.cell.c:.5g} Å  "

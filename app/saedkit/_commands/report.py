@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import argparse
 
-from ._calib_options import add_calibration_options
-from ._common import add_json_option, positive_float, software_record
-from ._index_options import add_match_options
+from saedkit._commands._calib_options import add_calibration_options
+from saedkit._commands._common import add_json_option, positive_float, software_record
+from saedkit._commands._index_options import add_match_options
 
 EXAMPLES = """\
 examples:
@@ -34,22 +34,22 @@ def register(sub) -> None:
 
 
 def run(args):
-    from ..core.errors import InputError
-    from ..report import write_report_bundle
+    from saedkit.core.errors import InputError
+    from saedkit.report import write_report_bundle
 
     if args.standard:
         if args.phase:
             raise InputError("give --phase (a spot pattern to index) or --standard (a ring standard), not both")
-        from ..core.imageio import read_pattern
-        from ..core.library import find_phase
-        from ..core.pipeline import analyse_ring_pattern
+        from saedkit.core.imageio import read_pattern
+        from saedkit.core.crystallography.library import find_phase
+        from saedkit.core.workflow.pipeline import analyse_ring_pattern
 
         analysis = analyse_ring_pattern(read_pattern(args.image), standard=find_phase(args.standard),
                                         voltage_kv=args.kv, pixel_size_um=args.pixel_size_um)
     else:
         if not args.phase:
             raise InputError("give at least one --phase to index a spot pattern, or --standard for a ring standard")
-        from .index import run_analysis
+        from saedkit._commands.index import run_analysis
 
         analysis = run_analysis(args)
     files = write_report_bundle(analysis, args.out)

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import argparse
 
-from ._calib_options import add_calibration_options, calibration_source_record, resolve_calibration_options
-from ._common import add_json_option, finite_or_none, positive_float, software_record
+from saedkit._commands._calib_options import add_calibration_options, calibration_source_record, resolve_calibration_options
+from saedkit._commands._common import add_json_option, finite_or_none, positive_float, software_record
 
 _EPILOG = """\
 examples:
@@ -43,11 +43,11 @@ def run(args):
 
     import numpy as np
 
-    from ..core.calibration import calculate_d_from_radius_array, calculate_d_sigma_from_radius_array
-    from ..core.distortion import NO_DISTORTION
-    from ..core.imageio import read_pattern
-    from ..core.masks import find_auto_mask
-    from ..core.rings import find_rings
+    from saedkit.core.calibration.calibrate import calculate_d_from_radius_array, calculate_d_sigma_from_radius_array
+    from saedkit.core.distortion import NO_DISTORTION
+    from saedkit.core.imageio import read_pattern
+    from saedkit.core.detection.masks import find_auto_mask
+    from saedkit.core.detection.rings import find_rings
 
     resolved = resolve_calibration_options(args)
     image = read_pattern(args.image)

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import argparse
 
-from ._calib_options import add_calibration_options, calibration_source_record, resolve_calibration_options
-from ._common import add_json_option, finite_or_none, positive_float, software_record
+from saedkit._commands._calib_options import add_calibration_options, calibration_source_record, resolve_calibration_options
+from saedkit._commands._common import add_json_option, finite_or_none, positive_float, software_record
 
 _EPILOG = """\
 examples:
@@ -45,13 +45,13 @@ def run(args):
 
     import numpy as np
 
-    from ..core.calibration import calculate_d_from_offset_array, calculate_d_sigma_array
-    from ..core.centre import find_centre_spots
-    from ..core.distortion import NO_DISTORTION
-    from ..core.errors import InputError
-    from ..core.imageio import read_pattern
-    from ..core.masks import find_auto_mask
-    from ..core.spots import find_spots
+    from saedkit.core.calibration.calibrate import calculate_d_from_offset_array, calculate_d_sigma_array
+    from saedkit.core.detection.centre import find_centre_spots
+    from saedkit.core.distortion import NO_DISTORTION
+    from saedkit.core.errors import InputError
+    from saedkit.core.imageio import read_pattern
+    from saedkit.core.detection.masks import find_auto_mask
+    from saedkit.core.detection.spots import find_spots
 
     if args.max_spots < 1:
         raise InputError(f"--max-spots must be >= 1, got {args.max_spots}")

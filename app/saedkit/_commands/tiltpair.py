@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import argparse
 
-from ._calib_options import add_calibration_options
-from ._common import add_json_option, positive_float, software_record
-from ._index_options import add_match_options
+from saedkit._commands._calib_options import add_calibration_options
+from saedkit._commands._common import add_json_option, positive_float, software_record
+from saedkit._commands._index_options import add_match_options
 
 EXAMPLES = """\
 examples:
@@ -32,9 +32,9 @@ def register(sub) -> None:
 
 
 def run(args):
-    from ..core.matching import match_tilt_pair
-    from .index import run_analysis
-    from ._index_options import resolve_phases
+    from saedkit.core.indexing.matching import match_tilt_pair
+    from saedkit._commands.index import run_analysis
+    from saedkit._commands._index_options import resolve_phases
 
     top = args.top
     args.top = max(top, 10)  # keep enough candidates per pattern for the pairing
@@ -43,7 +43,7 @@ def run(args):
         args.image = path
         a = run_analysis(args)
         if a.match is None:
-            from ..core.errors import FitError
+            from saedkit.core.errors import FitError
 
             raise FitError(f"{path}: too few spots to index")
         results.append(a)
@@ -53,7 +53,7 @@ def run(args):
     rec = {"software": software_record(), "tilt_deg": args.tilt_deg,
            "image_a": results[0].image.to_dict(), "image_b": results[1].image.to_dict(),
            "pairs": [p.to_dict() for p in pairs[:top]]}
-    from ..core.crystal import format_indices
+    from saedkit.core.crystallography.crystal import format_indices
 
     lines = [f"{len(pairs)} zone pair(s) {args.tilt_deg:g}° ± {args.tilt_tol:g}° apart"]
     for i, p in enumerate(pairs[:top], 1):

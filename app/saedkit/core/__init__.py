@@ -4,7 +4,7 @@ No Qt, no plotting, no printing. Import submodules directly, e.g.
 ``from saedkit.core.optics import calculate_wavelength_A``.
 """
 
-from .errors import (
+from saedkit.core.errors import (
     CrystalError,
     FitError,
     ImageReadError,

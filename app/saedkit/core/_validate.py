@@ -7,7 +7,7 @@ from typing import Any
 
 import numpy as np
 
-from .errors import InputError
+from saedkit.core.errors import InputError
 
 
 def check_positive(name: str, value: Any) -> float:

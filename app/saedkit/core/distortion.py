@@ -18,7 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._validate import check_finite, check_in_range
+from saedkit.core._validate import check_finite, check_in_range
 
 __all__ = ["Ellipse", "NO_DISTORTION"]
 

@@ -27,9 +27,9 @@ from typing import Any
 
 import numpy as np
 
-from ._atomic import write_with_atomic
-from ._validate import check_positive
-from .errors import ImageReadError, InputError
+from saedkit.core._atomic import write_with_atomic
+from saedkit.core._validate import check_positive
+from saedkit.core.errors import ImageReadError, InputError
 
 __all__ = [
     "PatternImage",
@@ -903,7 +903,7 @@ def write_tiff(
     """
     import tifffile
 
-    from .. import __version__
+    from saedkit import __version__
 
     arr = np.asarray(array)
     if arr.dtype == np.bool_:

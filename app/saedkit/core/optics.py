@@ -18,8 +18,8 @@ import math
 import numpy as np
 from scipy import constants as sc
 
-from ._validate import check_positive
-from .errors import InputError
+from saedkit.core._validate import check_positive
+from saedkit.core.errors import InputError
 
 __all__ = [
     "calculate_wavelength_A",

@@ -4,7 +4,7 @@ Shared by the session's measurement table, the ruler and the report's table,
 which measure one point (or one pair) at a time and must tolerate missing
 values: they return NaN where a value cannot be had, and never raise.
 The whole-array versions for calibrated points are in
-:mod:`saedkit.core.calibration`.
+:mod:`saedkit.core.calibration.calibrate`.
 """
 
 from __future__ import annotations

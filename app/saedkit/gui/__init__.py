@@ -14,11 +14,11 @@ __all__ = ["run", "MainWindow"]
 
 def __getattr__(name: str):
     if name == "run":
-        from .app import run
+        from saedkit.gui.app import run
 
         return run
     if name == "MainWindow":
-        from .main_window import MainWindow
+        from saedkit.gui.main_window import MainWindow
 
         return MainWindow
     raise AttributeError(f"module 'saedkit.gui' has no attribute {name!r}")

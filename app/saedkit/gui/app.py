@@ -22,10 +22,10 @@ def make_application(argv: list[str] | None = None):
     app.setApplicationName("saedkit")
     app.setOrganizationName("saedkit")
     app.setApplicationDisplayName("saedkit")
-    from .. import __version__
+    from saedkit import __version__
 
     app.setApplicationVersion(__version__)
-    from .icons import icon
+    from saedkit.gui.icons import icon
 
     app.setWindowIcon(icon("saedkit"))
     return app
@@ -52,7 +52,7 @@ def run(path: str | os.PathLike | None = None, *, demo: bool = False, synchronou
         exec_loop: bool = True) -> int:
     """Open the desktop program (optionally on a file or the demo session); returns the exit status."""
     app = make_application()
-    from .main_window import MainWindow
+    from saedkit.gui.main_window import MainWindow
 
     window = MainWindow(synchronous=synchronous)
     install_excepthook(window)

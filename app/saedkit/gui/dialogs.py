@@ -21,10 +21,10 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from ._compat import emit
+from saedkit.gui._compat import emit
 
-from ..core.errors import CrystalError
-from ..core.session import SessionSettings
+from saedkit.core.errors import CrystalError
+from saedkit.core.workflow.session import SessionSettings
 
 __all__ = ["NoticeBar", "PreferencesDialog", "NewPhaseDialog", "SaveCalibrationDialog", "parse_sites"]
 
@@ -223,7 +223,7 @@ class NewPhaseDialog(QDialog):
         self.phase = None
 
     def build(self):
-        from ..core.crystal import make_phase
+        from saedkit.core.crystallography.crystal import make_phase
 
         sites = parse_sites(self.sites.toPlainText())
         return make_phase(self.name.text().strip(), [w.value() for w in self.cell],

@@ -1,6 +1,6 @@
 """The main window: the pattern view, the step panels, menus, tools, long work and autosave.
 
-The window holds one :class:`~saedkit.core.session.Session` and redraws from
+The window holds one :class:`~saedkit.core.workflow.session.Session` and redraws from
 its change notices. Every edit goes through the session (so it can be undone);
 every computation is a core function, run on the task runner when it can take
 long. Expected failures (:class:`~saedkit.core.errors.SaedkitError`) are shown
@@ -37,22 +37,22 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from ..core.errors import InputError, SaedkitError
-from ..core.session import (
+from saedkit.core.errors import InputError, SaedkitError
+from saedkit.core.workflow.session import (
     SESSION_SUFFIX,
     Session,
     autosave_path,
     find_leftover_autosave,
     remove_autosave,
 )
-from . import settings as app_prefs
-from .dialogs import NewPhaseDialog, NoticeBar, PreferencesDialog, SaveCalibrationDialog, show_details
-from .display import DisplaySettings, calculate_colour_table, calculate_display_image
-from .icons import icon
-from .panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, RingPhasesPanel, SearchPanel
-from .tools import TOOL_CLASSES, describe_pair
-from .view import LAYER_NAMES, PatternView, calculate_argb_image
-from .workers import TaskRunner
+from saedkit.gui import settings as app_prefs
+from saedkit.gui.dialogs import NewPhaseDialog, NoticeBar, PreferencesDialog, SaveCalibrationDialog, show_details
+from saedkit.gui.display import DisplaySettings, calculate_colour_table, calculate_display_image
+from saedkit.gui.icons import icon
+from saedkit.gui.panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, RingPhasesPanel, SearchPanel
+from saedkit.gui.tools import TOOL_CLASSES, describe_pair
+from saedkit.gui.view import LAYER_NAMES, PatternView, calculate_argb_image
+from saedkit.gui.workers import TaskRunner
 
 __all__ = ["MainWindow", "IMAGE_FILTER", "SESSION_FILTER"]
 
@@ -73,7 +73,7 @@ def _render_screen(data: np.ndarray, settings: DisplaySettings, *, mask=None, st
 def _shown_hkl(hkl, candidate) -> tuple:
     """(hkl) as shown: Miller–Bravais (hkil) for a hexagonal candidate."""
     if candidate is not None and candidate.zone_four_index is not None:
-        from ..core.crystal import to_four_index_plane
+        from saedkit.core.crystallography.crystal import to_four_index_plane
 
         return to_four_index_plane(hkl)
     return tuple(int(v) for v in hkl)
@@ -85,8 +85,8 @@ def _warm_up_imports() -> None:
     import threading
 
     def load():
-        for name in ("saedkit.core.spots", "saedkit.core.masks", "saedkit.core.rings", "saedkit.core.centre",
-                     "saedkit.core.matching", "saedkit.core.calibration", "saedkit.core.calibration_library"):
+        for name in ("saedkit.core.detection.spots", "saedkit.core.detection.masks", "saedkit.core.detection.rings", "saedkit.core.detection.centre",
+                     "saedkit.core.indexing.matching", "saedkit.core.calibration.calibrate", "saedkit.core.calibration.library"):
             try:
                 importlib.import_module(name)
             except ImportError:
@@ -544,7 +544,7 @@ class MainWindow(QMainWindow):
         v.centre_layer.set_centre(None if c is None else (c.x, c.y))
         cand = s.candidate
         labels: list = []
-        from ..core.session import find_spot_hkl
+        from saedkit.core.workflow.session import find_spot_hkl
 
         c_xy = None if c is None else (c.x, c.y)
         hkls = find_spot_hkl(s.spots_xy, cand, centre_xy=c_xy) if cand is not None else [None] * len(s.spots)
@@ -760,7 +760,7 @@ class MainWindow(QMainWindow):
             self.open_image_file(p, then=then)
 
     def open_image_file(self, path: Path, *, then: Callable[[Session], None] | None = None) -> None:
-        from ..core.imageio import read_pattern
+        from saedkit.core.imageio import read_pattern
 
         settings = self.display
 
@@ -812,7 +812,7 @@ class MainWindow(QMainWindow):
         sat = session.image.saturation_value
 
         def work(progress, should_stop):
-            from ..core.masks import find_auto_mask
+            from saedkit.core.detection.masks import find_auto_mask
 
             mask = find_auto_mask(data, saturation_value=sat)
             screen_buffer = np.empty(mask.shape, dtype=np.uint32)
@@ -993,7 +993,7 @@ class MainWindow(QMainWindow):
     def find_spot_at(self, xy, *, exact: bool = False, exclude: int | None = None, quiet: bool = False):
         """The spot at a click: snapped to a refined spot nearby, or exactly at the click."""
         s = self._require()
-        from ..core.spots import Spot, snap_to_spot
+        from saedkit.core.detection.spots import Spot, snap_to_spot
 
         if exact:
             return Spot(float(xy[0]), float(xy[1]), 1.0, 1.0, math.nan, math.nan, math.nan, math.nan,
@@ -1003,7 +1003,7 @@ class MainWindow(QMainWindow):
 
     def paint_mask(self, points, radius_px: float, *, erase: bool = False) -> None:
         """Apply a brush stroke (discs along ``points``) to the mask: one undo step."""
-        from ..core.masks import mask_disc
+        from saedkit.core.detection.masks import mask_disc
 
         s = self._require()
         pts = np.asarray(points, float).reshape(-1, 2)
@@ -1023,7 +1023,7 @@ class MainWindow(QMainWindow):
         s.set_mask(mask, label="Erase mask" if erase else "Paint mask")
 
     def fill_mask_polygon(self, vertices, *, erase: bool = False) -> None:
-        from ..core.masks import mask_polygon
+        from saedkit.core.detection.masks import mask_polygon
 
         s = self._require()
         s.set_mask(mask_polygon(s.mask, vertices, value=not erase),
@@ -1038,7 +1038,7 @@ class MainWindow(QMainWindow):
         centre = None if s.centre is None else (s.centre.x, s.centre.y)
 
         def work(progress, should_stop):
-            from ..core.masks import find_auto_mask
+            from saedkit.core.detection.masks import find_auto_mask
 
             return find_auto_mask(data, centre_xy=centre, saturation_value=sat)
 
@@ -1061,7 +1061,7 @@ class MainWindow(QMainWindow):
         guess = None if s.centre is None else (s.centre.x, s.centre.y)
 
         def work(progress, should_stop):
-            from ..core.rings import find_rings
+            from saedkit.core.detection.rings import find_rings
 
             return find_rings(data, mask=mask, centre_guess_xy=guess, progress=progress, should_stop=should_stop)
 
@@ -1082,7 +1082,7 @@ class MainWindow(QMainWindow):
         guess = None if s.centre is None else (s.centre.x, s.centre.y)
 
         def work(progress, should_stop):
-            find_centre_spots = _needs("saedkit.core.centre", "find_centre_spots")
+            find_centre_spots = _needs("saedkit.core.detection.centre", "find_centre_spots")
             return find_centre_spots(data, mask=mask, guess_xy=guess)
 
         def done(c):
@@ -1103,14 +1103,14 @@ class MainWindow(QMainWindow):
         want_centre = s.centre is None
 
         def work(progress, should_stop):
-            from ..core.spots import find_spots
+            from saedkit.core.detection.spots import find_spots
 
             spots = find_spots(data, mask=mask, centre_xy=centre, min_snr=min_snr, progress=progress,
                                should_stop=should_stop)
             c = None
             if want_centre and len(spots) >= 4:
                 try:
-                    find_centre_spots = _needs("saedkit.core.centre", "find_centre_spots")
+                    find_centre_spots = _needs("saedkit.core.detection.centre", "find_centre_spots")
                     c = find_centre_spots(data, mask=mask)
                 except SaedkitError:
                     c = None
@@ -1136,7 +1136,7 @@ class MainWindow(QMainWindow):
     def search(self) -> None:
         """Run the zone-axis search over the ticked phases."""
         s = self._require()
-        from ..core.centre import CentreResult
+        from saedkit.core.detection.centre import CentreResult
 
         if len(s.spots) < 2:
             raise InputError("the search needs at least two spots besides the central beam: "
@@ -1160,13 +1160,13 @@ class MainWindow(QMainWindow):
         centre0 = s.centre
 
         def work(progress, should_stop):
-            from ..core.library import find_phase
-            from ..core.matching import match_zone_axes
+            from saedkit.core.crystallography.library import find_phase
+            from saedkit.core.indexing.matching import match_zone_axes
 
             phases = [find_phase(n) for n in names]
             centre = centre0
             if centre is None:
-                find_centre_spots = _needs("saedkit.core.centre", "find_centre_spots")
+                find_centre_spots = _needs("saedkit.core.detection.centre", "find_centre_spots")
                 centre = find_centre_spots(data, mask=mask)
             kwargs = {}
             if ell is not None:
@@ -1200,7 +1200,7 @@ class MainWindow(QMainWindow):
             else:
                 b = match.candidates[0]
                 zone = b.zone_four_index if b.zone_four_index is not None else b.zone
-                from ..core.crystal import format_indices
+                from saedkit.core.crystallography.crystal import format_indices
 
                 self.notify(f"Best candidate: {b.phase} {format_indices(zone, brackets='[]')}, score {b.score:.3f}, "
                             f"{b.n_explained} of {b.n_spots} spots explained ({len(match.candidates)} "
@@ -1222,9 +1222,9 @@ class MainWindow(QMainWindow):
         mask = s.mask
 
         def work(progress, should_stop):
-            from ..core.library import find_phase
+            from saedkit.core.crystallography.library import find_phase
 
-            calibrate_from_rings = _needs("saedkit.core.calibration", "calibrate_from_rings")
+            calibrate_from_rings = _needs("saedkit.core.calibration.calibrate", "calibrate_from_rings")
             phase = find_phase(standard)
             return calibrate_from_rings(image, phase, voltage_kv=st.voltage_kv, mask=mask,
                                         pixel_size_um=st.pixel_size_um, progress=progress,
@@ -1264,7 +1264,7 @@ class MainWindow(QMainWindow):
             return
         names = list(s.phases)
         if not names:
-            from ..core.library import LIBRARY
+            from saedkit.core.crystallography.library import LIBRARY
 
             names = [e.name for e in LIBRARY]
         tol = self.ring_phases_panel.tolerance_pct()
@@ -1273,10 +1273,10 @@ class MainWindow(QMainWindow):
         guess = None if s.centre is None else (s.centre.x, s.centre.y)
 
         def work(progress, should_stop):
-            from ..core.errors import FitError
-            from ..core.identify import identify_phases
-            from ..core.library import find_phase
-            from ..core.rings import find_rings
+            from saedkit.core.errors import FitError
+            from saedkit.core.indexing.identify import identify_phases
+            from saedkit.core.crystallography.library import find_phase
+            from saedkit.core.detection.rings import find_rings
 
             phases = [find_phase(n) for n in names]
             fit = find_rings(data, mask=mask, centre_guess_xy=guess, progress=progress, should_stop=should_stop)
@@ -1319,7 +1319,7 @@ class MainWindow(QMainWindow):
     # ------------------------------------------------------------------ calibration library
 
     def _library(self):
-        return _needs("saedkit.core.calibration_library", "CalibrationLibrary")()
+        return _needs("saedkit.core.calibration.library", "CalibrationLibrary")()
 
     def calibration_names(self) -> list[str]:
         try:
@@ -1346,7 +1346,7 @@ class MainWindow(QMainWindow):
         cal = s.calibration
         if cal is None or not hasattr(cal, "profile"):
             raise InputError("only a calibration fitted on this pattern can be saved: fit the rings first")
-        SavedCalibration = _needs("saedkit.core.calibration_library", "SavedCalibration")
+        SavedCalibration = _needs("saedkit.core.calibration.library", "SavedCalibration")
         st = s.settings
         nominal = float(getattr(s.image, "camera_length_mm", None) or 0.0)
         dlg = SaveCalibrationDialog(self, name=f"{st.voltage_kv:g} kV" + (f" CL {nominal:g} mm" if nominal else ""),
@@ -1370,7 +1370,7 @@ class MainWindow(QMainWindow):
         return path
 
     def add_cif_phase(self) -> None:
-        from ..core.crystal import read_phase_cif
+        from saedkit.core.crystallography.crystal import read_phase_cif
 
         path = self.ask_open_cif()
         if not path:
@@ -1388,8 +1388,8 @@ class MainWindow(QMainWindow):
 
     def add_typed_phase(self, phase) -> str:
         """Keep a typed-in phase as a CIF in the data folder and tick it; returns the CIF path."""
-        from ..core._atomic import write_text_atomic
-        from ..core.session import data_dir
+        from saedkit.core._atomic import write_text_atomic
+        from saedkit.core.workflow.session import data_dir
 
         safe = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in phase.name) or "phase"
         path = data_dir() / "phases" / f"{safe}.cif"
@@ -1500,7 +1500,7 @@ class MainWindow(QMainWindow):
         QMessageBox.information(self, "Mouse and keys", "<br><br>".join(lines))
 
     def _about(self) -> None:
-        from .. import __version__
+        from saedkit import __version__
 
         QMessageBox.about(self, "About saedkit",
                           f"<b>saedkit {__version__}</b><br>Measure, calibrate and index selected-area electron "

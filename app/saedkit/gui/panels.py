@@ -38,14 +38,14 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from ._compat import emit
+from saedkit.gui._compat import emit
 
-from ..core.crystal import format_indices
-from .display import COLOUR_MAPS, MAPPINGS, DisplaySettings
-from .icons import icon
-from .overlays import draw_indices
-from .plot import ProfilePlot
-from .view import LAYER_NAMES
+from saedkit.core.crystallography.crystal import format_indices
+from saedkit.gui.display import COLOUR_MAPS, MAPPINGS, DisplaySettings
+from saedkit.gui.icons import icon
+from saedkit.gui.overlays import draw_indices
+from saedkit.gui.plot import ProfilePlot
+from saedkit.gui.view import LAYER_NAMES
 
 #: Item-data role holding a Miller-index tuple, drawn with overbars by IndicesDelegate.
 INDICES_ROLE = int(Qt.ItemDataRole.UserRole) + 1
@@ -235,7 +235,7 @@ class CalibrationPanel(_Panel):
 
     def __init__(self, ctx, parent=None) -> None:
         super().__init__(ctx, parent)
-        from ..core.library import LIBRARY
+        from saedkit.core.crystallography.library import LIBRARY
 
         lay = QVBoxLayout(self)
         fit_box = QGroupBox("Fit a ring standard")
@@ -460,7 +460,7 @@ class PhasesPanel(_Panel):
 
     def __init__(self, ctx, parent=None) -> None:
         super().__init__(ctx, parent)
-        from ..core.library import list_library
+        from saedkit.core.crystallography.library import list_library
 
         lay = QVBoxLayout(self)
         lay.addWidget(QLabel("Tick the phases the search may consider:"))

@@ -9,7 +9,7 @@ from PySide6.QtCore import QPointF, QRectF, QSize, Qt
 from PySide6.QtGui import QColor, QFont, QFontMetricsF, QPainter, QPen, QPolygonF
 from PySide6.QtWidgets import QSizePolicy, QWidget
 
-from .overlays import draw_indices
+from saedkit.gui.overlays import draw_indices
 
 __all__ = ["ProfilePlot"]
 

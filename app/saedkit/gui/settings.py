@@ -13,9 +13,9 @@ from pathlib import Path
 
 from PySide6.QtCore import QSettings
 
-from ..core.errors import InputError
-from ..core.session import SessionSettings
-from .display import DisplaySettings
+from saedkit.core.errors import InputError
+from saedkit.core.workflow.session import SessionSettings
+from saedkit.gui.display import DisplaySettings
 
 __all__ = ["app_settings", "read_preferences", "write_preferences", "recent_files", "add_recent_file",
            "remove_recent_file", "read_display", "write_display", "MAX_RECENT"]

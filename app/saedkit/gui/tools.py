@@ -14,9 +14,9 @@ import math
 import numpy as np
 from PySide6.QtCore import Qt
 
-from ..core.centre import manual_centre
-from ..core.errors import SaedkitError
-from .panels import fmt_pm
+from saedkit.core.detection.centre import manual_centre
+from saedkit.core.errors import SaedkitError
+from saedkit.gui.panels import fmt_pm
 
 __all__ = ["Tool", "PanTool", "CentreTool", "SpotTool", "RulerTool", "MaskTool", "TOOL_CLASSES"]
 

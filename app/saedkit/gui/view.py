@@ -15,11 +15,11 @@ from PySide6.QtCore import QPointF, QRectF, Qt, Signal
 from PySide6.QtGui import QColor, QFont, QFontMetricsF, QPainter, QPen, QTransform
 from PySide6.QtWidgets import QGraphicsScene, QGraphicsView
 
-from ._compat import emit
+from saedkit.gui._compat import emit
 
-from ..core.errors import SaedkitError
-from .display import calculate_colour_table
-from .overlays import (
+from saedkit.core.errors import SaedkitError
+from saedkit.gui.display import calculate_colour_table
+from saedkit.gui.overlays import (
     CentreLayer,
     ImageLayer,
     EllipseLayer,
@@ -45,7 +45,7 @@ def _apply_lut(lut: np.ndarray, image8: np.ndarray) -> np.ndarray:
     if image8.size < 1_000_000:
         np.take(lut, image8, out=out)
         return out
-    from .display import _pool
+    from saedkit.gui.display import _pool
 
     edges = np.linspace(0, image8.shape[0], 9).astype(int)
     futures = [_pool().submit(np.take, lut, image8[a:b], None, out[a:b]) for a, b in zip(edges[:-1], edges[1:])]

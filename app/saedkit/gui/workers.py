@@ -24,7 +24,7 @@ from typing import Any, Callable
 
 from PySide6.QtCore import QObject, QRunnable, QThreadPool, Signal, Slot
 
-from ._compat import emit
+from saedkit.gui._compat import emit
 
 __all__ = ["TaskRunner", "TaskCancelled", "TaskInfo"]
 

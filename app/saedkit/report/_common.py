@@ -1,5 +1,5 @@
 """Helpers shared by the exports: JSON conversion, number formatting, and a
-uniform view of the parts of an :class:`~saedkit.core.analysis.Analysis`.
+uniform view of the parts of an :class:`~saedkit.core.workflow.analysis.Analysis`.
 
 No matplotlib here: the CSV and JSON exports import this module only.
 
@@ -21,9 +21,9 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
-from ..core.distortion import NO_DISTORTION, Ellipse
-from ..core.errors import InputError
+from saedkit import __version__
+from saedkit.core.distortion import NO_DISTORTION, Ellipse
+from saedkit.core.errors import InputError
 
 __all__ = [
     "CAUTION",
@@ -181,7 +181,7 @@ def _trim(text: str) -> str:
 
 def hkl_text(hkl, *, hexagonal: bool = False, brackets: str = "()") -> str:
     """Indices with overbars for negatives, e.g. (1̄11); Miller–Bravais (hkil) when ``hexagonal``."""
-    from ..core.crystal import format_indices, to_four_index_plane
+    from saedkit.core.crystallography.crystal import format_indices, to_four_index_plane
 
     if hkl is None:
         return ""
@@ -193,7 +193,7 @@ def hkl_text(hkl, *, hexagonal: bool = False, brackets: str = "()") -> str:
 
 def zone_text(candidate) -> str:
     """The zone axis of a candidate, e.g. [01̄1]; four-index [uvtw] for a hexagonal phase."""
-    from ..core.crystal import format_indices
+    from saedkit.core.crystallography.crystal import format_indices
 
     if candidate is None:
         return ""
@@ -337,7 +337,7 @@ def summarize_calibration(cal, *, image=None) -> CalibrationInfo | None:
     pixel = finite(getattr(cal, "pixel_size_um", None)) or finite(getattr(image, "pixel_size_um", None))
     lam = finite(getattr(cal, "wavelength_A", None))
     if lam is None and voltage:
-        from ..core.optics import calculate_wavelength_A
+        from saedkit.core.optics import calculate_wavelength_A
 
         lam = calculate_wavelength_A(voltage)
     lam_l = finite(getattr(cal, "lambda_L_mm_A", None))

@@ -7,8 +7,8 @@ import re
 from pathlib import Path
 from typing import Callable, Sequence
 
-from ..core.errors import InputError
-from ._common import image_stem
+from saedkit.core.errors import InputError
+from saedkit.report._common import image_stem
 
 __all__ = ["BUNDLE_FORMATS", "bundle_file_names", "write_report_bundle"]
 
@@ -83,19 +83,19 @@ def write_report_bundle(analysis, out_dir: str | os.PathLike, *, stem: str | Non
     for i, fmt in enumerate(formats, start=1):
         target = out / names[fmt]
         if fmt == "csv":
-            from .tables import write_measurements_csv
+            from saedkit.report.tables import write_measurements_csv
 
             written[fmt] = write_measurements_csv(analysis, target)
         elif fmt == "json":
-            from .tables import write_analysis_json
+            from saedkit.report.tables import write_analysis_json
 
             written[fmt] = write_analysis_json(analysis, target)
         elif fmt in ("png", "svg"):
-            from .figures import write_pattern_figure
+            from saedkit.report.figures import write_pattern_figure
 
             written[fmt] = write_pattern_figure(analysis, target, fmt=fmt)
         else:
-            from .pdf import write_pdf_report
+            from saedkit.report.pdf import write_pdf_report
 
             written[fmt] = write_pdf_report(analysis, target)
         if progress is not None:

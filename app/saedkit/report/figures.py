@@ -30,10 +30,10 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ..core._atomic import write_with_atomic
-from ..core.distortion import NO_DISTORTION, Ellipse
-from ..core.errors import InputError
-from ._common import (
+from saedkit.core._atomic import write_with_atomic
+from saedkit.core.distortion import NO_DISTORTION, Ellipse
+from saedkit.core.errors import InputError
+from saedkit.report._common import (
     describe_unindexed,
     finite,
     format_sig,
@@ -237,12 +237,12 @@ class _Labeller:
 def index_mathtext(idx, *, brackets: str = "()", hexagonal: bool = False) -> str:
     """Indices as matplotlib mathtext with a clear overline over each negative index, e.g. ``$\\overline{1}11$``.
 
-    The combining overbar of :func:`~saedkit.core.crystal.format_indices` sits
+    The combining overbar of :func:`~saedkit.core.crystallography.crystal.format_indices` sits
     too close to the digit at label sizes (it reads as "I"); mathtext draws a
     bar with a gap. Two neighbouring negative indices get a thin space so
     their bars stay apart; indices above 9 are separated by spaces.
     """
-    from ..core.crystal import to_four_index_plane
+    from saedkit.core.crystallography.crystal import to_four_index_plane
 
     vals = [int(v) for v in idx]
     if hexagonal and len(vals) == 3:

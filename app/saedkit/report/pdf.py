@@ -25,8 +25,8 @@ import textwrap
 from pathlib import Path
 from typing import Any, Callable
 
-from ..core._atomic import write_with_atomic
-from ._common import (
+from saedkit.core._atomic import write_with_atomic
+from saedkit.report._common import (
     describe_unindexed,
     CAUTION,
     finite,
@@ -42,8 +42,8 @@ from ._common import (
     summarize_calibration,
     zone_text,
 )
-from .figures import RC, _draw_pattern, _profile_parts, draw_profile, escape_dollars, index_mathtext, zone_mathtext
-from .tables import calculate_measurement_table
+from saedkit.report.figures import RC, _draw_pattern, _profile_parts, draw_profile, escape_dollars, index_mathtext, zone_mathtext
+from saedkit.report.tables import calculate_measurement_table
 
 __all__ = ["write_pdf_report", "plan_pdf_pages", "PAGE_SIZE_IN", "TABLE_ROWS_FIRST_PAGE", "TABLE_ROWS_PER_PAGE"]
 

@@ -25,10 +25,10 @@ from typing import Any
 
 import numpy as np
 
-from ..core._atomic import write_text_atomic
-from ..core.errors import InputError
-from ..core.uncertainty import calculate_d_sigma, calculate_radius_sigmas
-from ._common import (
+from saedkit.core._atomic import write_text_atomic
+from saedkit.core.errors import InputError
+from saedkit.core.uncertainty import calculate_d_sigma, calculate_radius_sigmas
+from saedkit.report._common import (
     CentreInfo,
     finite,
     format_sig,

@@ -1,0 +1,1 @@
+"""The camera constant: fits on ring and spot standards, the calibration library."""

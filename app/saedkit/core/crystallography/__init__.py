@@ -1,0 +1,1 @@
+"""Crystallography: unit cells, phases, structure factors, zone-axis geometry, the phase library."""

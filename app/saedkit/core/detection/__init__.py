@@ -1,0 +1,1 @@
+"""Detection on the image: masks, the pattern centre, spots and rings."""

@@ -1,0 +1,1 @@
+"""The pattern simulator (kinematic spots and rings, detector effects) used by the demo and the tests."""

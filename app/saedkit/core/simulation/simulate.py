@@ -1,0 +1,248 @@
+"""Kinematic diffraction-pattern synthesiser for tests and the demo.
+
+Spot patterns of a phase at a zone axis (with in-plane rotation, camera
+constant, ellipse distortion) and ring patterns of a polycrystalline phase,
+drawn by :func:`saedkit.core.simulation.render.render_pattern` with a saturated central
+beam, beam stop, background and noise. Each returns the image with its
+ground truth. The data are invented: they serve tests and the demo only.
+
+Intensities are kinematic: ``|F|²`` times a relrod factor
+``1 / (1 + (π t s)²)`` for foil thickness ``t`` and excitation error ``s`` at
+the exact zone-axis orientation; rings carry ``m·|F|²`` spread over their
+circumference. Dynamical effects are not modelled, but a spot pattern can
+add the kinematically forbidden reflections that double diffraction would
+bring back (Si 200 at [011]).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from saedkit.core._validate import check_positive
+from saedkit.core.crystallography.crystal import Phase, reduce_indices
+from saedkit.core.distortion import NO_DISTORTION, Ellipse
+from saedkit.core.optics import calculate_wavelength_A
+from saedkit.core.simulation.render import BeamStop, Detector, render_pattern
+from saedkit.core.crystallography.structure_factors import calculate_reflections, calculate_ring_families
+from saedkit.core.crystallography.zone import calculate_excitation_error_array, calculate_pattern_offsets_array
+
+__all__ = ["SpotPatternTruth", "RingPatternTruth", "simulate_spot_pattern", "simulate_ring_pattern"]
+
+
+@dataclass(frozen=True)
+class SpotPatternTruth:
+    """Ground truth of a simulated spot pattern."""
+
+    phase: str
+    zone: tuple[int, int, int]
+    camera_constant_px_A: float
+    rotation_deg: float
+    centre_xy: tuple[float, float]
+    ellipse: Ellipse
+    voltage_kv: float
+    hkl: np.ndarray = field(repr=False)  # (N, 3) drawn reflections (extra spots have hkl 0 0 0)
+    xy: np.ndarray = field(repr=False)  # (N, 2) observed positions
+    d_A: np.ndarray = field(repr=False)
+    snr: np.ndarray = field(repr=False)
+    forbidden: np.ndarray = field(repr=False)  # bool: kinematically forbidden, added as double diffraction
+    extra: np.ndarray = field(repr=False)  # bool: spurious spot (dust, second grain)
+
+    def to_dict(self) -> dict:
+        return {
+            "phase": self.phase, "zone": list(self.zone), "camera_constant_px_A": self.camera_constant_px_A,
+            "rotation_deg": self.rotation_deg, "centre_px": list(self.centre_xy), "ellipse": self.ellipse.to_dict(),
+            "voltage_kv": self.voltage_kv,
+            "spots": [{"hkl": [int(v) for v in h], "x": float(p[0]), "y": float(p[1]), "d_A": float(d),
+                       "snr": float(s), "forbidden": bool(f), "extra": bool(e)}
+                      for h, p, d, s, f, e in zip(self.hkl, self.xy, self.d_A, self.snr, self.forbidden, self.extra)],
+        }
+
+
+@dataclass(frozen=True)
+class RingPatternTruth:
+    """Ground truth of a simulated ring pattern."""
+
+    phase: str
+    camera_constant_px_A: float
+    centre_xy: tuple[float, float]
+    ellipse: Ellipse
+    voltage_kv: float
+    hkl: tuple[tuple[int, int, int], ...]
+    d_A: np.ndarray = field(repr=False)
+    radius_px: np.ndarray = field(repr=False)
+    relative_intensity: np.ndarray = field(repr=False)
+
+    def to_dict(self) -> dict:
+        return {
+            "phase": self.phase, "camera_constant_px_A": self.camera_constant_px_A, "centre_px": list(self.centre_xy),
+            "ellipse": self.ellipse.to_dict(), "voltage_kv": self.voltage_kv,
+            "rings": [{"hkl": list(h), "d_A": float(d), "radius_px": float(r), "relative_intensity": float(i)}
+                      for h, d, r, i in zip(self.hkl, self.d_A, self.radius_px, self.relative_intensity)],
+        }
+
+
+def _default_centre(shape, rng):
+    rows, cols = shape
+    jitter = rng.uniform(-0.05, 0.05, 2) * np.array([cols, rows]) if rng is not None else np.zeros(2)
+    return (cols / 2 - 0.5 + 0.37 + jitter[0], rows / 2 - 0.5 - 0.21 + jitter[1])
+
+
+def simulate_spot_pattern(
+    phase: Phase,
+    zone,
+    *,
+    shape: tuple[int, int] = (512, 512),
+    camera_constant_px_A: float = 600.0,
+    rotation_deg: float = 0.0,
+    centre_xy=None,
+    ellipse: Ellipse = NO_DISTORTION,
+    voltage_kv: float = 200.0,
+    thickness_A: float = 250.0,
+    peak_counts: float = 4000.0,
+    spot_sigma_px: float = 1.6,
+    min_relative_intensity: float = 2e-3,
+    double_diffraction: bool = False,
+    n_missing: int = 0,
+    n_extra: int = 0,
+    background_counts: float = 300.0,
+    beam_stop: BeamStop | None = None,
+    detector: Detector = Detector(),
+    rng: np.random.Generator | None = None,
+) -> tuple[np.ndarray, SpotPatternTruth]:
+    """Simulate a zero-order Laue-zone spot pattern of ``phase`` along ``zone``.
+
+    Parameters
+    ----------
+    phase : Phase
+    zone : [u, v, w]
+        Zone axis (direct-lattice direction).
+    shape : (rows, cols)
+    camera_constant_px_A : float
+        K in pixel·Å (R = K/d).
+    rotation_deg : float
+        In-plane rotation of the pattern.
+    centre_xy : [x, y], optional
+        Defaults to near the image centre (off by a fraction of a pixel).
+    ellipse : Ellipse
+        Projector distortion.
+    voltage_kv : float
+        Accelerating voltage (wavelength and Ewald-sphere curvature).
+    thickness_A : float
+        Foil thickness for the relrod factor.
+    peak_counts : float
+        Peak height of the strongest spot, counts.
+    min_relative_intensity : float
+        Weaker reflections are not drawn.
+    double_diffraction : bool
+        Also draw kinematically forbidden ZOLZ reflections that are sums of
+        two allowed ones, at 30 % of the weaker of the two (dynamical effects).
+    n_missing, n_extra : int
+        Remove this many random drawn spots; add this many spurious spots.
+    beam_stop, detector, rng
+        Passed to :func:`~saedkit.core.simulation.render.render_pattern`.
+
+    Returns
+    -------
+    image : ndarray
+    truth : SpotPatternTruth
+    """
+    K = check_positive("camera_constant_px_A", camera_constant_px_A)
+    uvw = tuple(int(v) for v in reduce_indices(zone))
+    rows, cols = shape
+    c = np.asarray(centre_xy if centre_xy is not None else _default_centre(shape, rng), float)
+    r_max = np.hypot(max(c[0], cols - c[0]), max(c[1], rows - c[1]))
+    table = calculate_reflections(phase, g_max_per_A=r_max / K, voltage_kv=voltage_kv)
+    zolz = table.select(table.hkl @ np.array(uvw) == 0)
+    lam = calculate_wavelength_A(voltage_kv)
+    s = calculate_excitation_error_array(phase.cell, uvw, zolz.hkl, wavelength_A=lam) if len(zolz) else np.zeros(0)
+    relrod = 1.0 / (1.0 + (np.pi * thickness_A * s) ** 2)
+    inten = zolz.intensity * relrod
+    allowed = zolz.allowed.copy()
+    forbidden = np.zeros(len(zolz), bool)
+    if double_diffraction and np.any(allowed):
+        ah = zolz.hkl[allowed]
+        ai = inten[allowed]
+        lookup = {tuple(h): i for i, h in enumerate(ah.tolist())}
+        for i in np.flatnonzero(~allowed):
+            h = zolz.hkl[i]
+            best = 0.0
+            for j, h1 in enumerate(ah):
+                k = lookup.get(tuple((h - h1).tolist()))
+                if k is not None:
+                    best = max(best, min(ai[j], ai[k]))
+            if best > 0 and not phase.is_centring_absent_array(h)[0]:
+                inten[i] = 0.3 * best
+                forbidden[i] = True
+    draw = (allowed | forbidden) & (inten >= min_relative_intensity * (inten[allowed].max() if allowed.any() else 1))
+    hkl = zolz.hkl[draw]
+    inten = inten[draw]
+    forbidden = forbidden[draw]
+    offsets = calculate_pattern_offsets_array(phase.cell, uvw, hkl, camera_constant_px_A=K, rotation_deg=rotation_deg)
+    obs = c + ellipse.distort_array(offsets) if len(offsets) else np.zeros((0, 2))
+    margin = 4 * spot_sigma_px
+    inside = (obs[:, 0] > margin) & (obs[:, 0] < cols - 1 - margin) & (obs[:, 1] > margin) & (obs[:, 1] < rows - 1 - margin)
+    hkl, inten, forbidden, offsets = hkl[inside], inten[inside], forbidden[inside], offsets[inside]
+    gen = rng if rng is not None else np.random.default_rng(0)
+    if n_missing and len(hkl) > n_missing:
+        keep = np.ones(len(hkl), bool)
+        keep[gen.choice(len(hkl), n_missing, replace=False)] = False
+        hkl, inten, forbidden, offsets = hkl[keep], inten[keep], forbidden[keep], offsets[keep]
+    extra = np.zeros(len(hkl), bool)
+    if n_extra:
+        ex = np.column_stack([gen.uniform(margin, cols - 1 - margin, n_extra),
+                              gen.uniform(margin, rows - 1 - margin, n_extra)]) - c
+        offsets = np.vstack([offsets, ellipse.correct_array(ex)])
+        inten = np.concatenate([inten, np.full(n_extra, np.median(inten) if len(inten) else 1.0)])
+        hkl = np.vstack([hkl, np.zeros((n_extra, 3), int)])
+        forbidden = np.concatenate([forbidden, np.zeros(n_extra, bool)])
+        extra = np.concatenate([extra, np.ones(n_extra, bool)])
+    peaks = peak_counts * inten / (inten.max() if len(inten) else 1.0)
+    image, rt = render_pattern(
+        shape, c, spot_offsets_xy=offsets, spot_intensity=peaks, spot_sigma_px=spot_sigma_px,
+        ellipse=ellipse, background_intensity=background_counts, beam_stop=beam_stop,
+        detector=detector, rng=rng,
+    )
+    d = np.where(extra, np.nan, 1.0 / np.maximum(phase.cell.calculate_g_array(np.where(extra[:, None], 1, hkl)), 1e-12)) if len(hkl) else np.zeros(0)
+    truth = SpotPatternTruth(phase.name, uvw, K, float(rotation_deg), (float(c[0]), float(c[1])), ellipse,
+                             float(voltage_kv), hkl, rt.spot_xy, d, rt.spot_snr, forbidden, extra)
+    return image, truth
+
+
+def simulate_ring_pattern(
+    phase: Phase,
+    *,
+    shape: tuple[int, int] = (512, 512),
+    camera_constant_px_A: float = 600.0,
+    centre_xy=None,
+    ellipse: Ellipse = NO_DISTORTION,
+    voltage_kv: float = 200.0,
+    peak_counts: float = 1500.0,
+    ring_width_px: float = 1.5,
+    background_counts: float = 400.0,
+    beam_stop: BeamStop | None = None,
+    detector: Detector = Detector(),
+    rng: np.random.Generator | None = None,
+) -> tuple[np.ndarray, RingPatternTruth]:
+    """Simulate the ring pattern of a fine-grained, untextured film of ``phase``.
+
+    Ring heights follow ``m·|F|² / R`` (the ring's power spread over its
+    circumference), scaled so the strongest ring peaks at ``peak_counts``.
+    """
+    K = check_positive("camera_constant_px_A", camera_constant_px_A)
+    rows, cols = shape
+    c = np.asarray(centre_xy if centre_xy is not None else _default_centre(shape, rng), float)
+    r_max = min(c[0], cols - 1 - c[0], c[1], rows - 1 - c[1]) * (1 - ellipse.ellipticity) - 4 * ring_width_px
+    fams = calculate_ring_families(phase, d_min_A=K / max(r_max, 1.0), voltage_kv=voltage_kv)
+    d = np.array([f.d_A for f in fams])
+    R = K / d
+    h = np.array([f.intensity for f in fams]) / R
+    h = h / h.max() if len(h) else h
+    image, _ = render_pattern(
+        shape, c, ring_radius_px=R, ring_intensity=peak_counts * h, ring_width_px=ring_width_px,
+        ellipse=ellipse, background_intensity=background_counts, beam_stop=beam_stop, detector=detector, rng=rng,
+    )
+    truth = RingPatternTruth(phase.name, K, (float(c[0]), float(c[1])), ellipse, float(voltage_kv),
+                             tuple(f.hkl for f in fams), d, R, h)
+    return image, truth
