@@ -9,7 +9,7 @@ OPENBLAS_NUM_THREADS ?= 1
 OMP_NUM_THREADS ?= 1
 export OPENBLAS_NUM_THREADS OMP_NUM_THREADS
 
-.PHONY: run test bench demo clean
+.PHONY: run test lint bench demo clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -22,6 +22,9 @@ run: $(STAMP)
 
 test: $(STAMP)
 	QT_QPA_PLATFORM=offscreen $(PY) -m pytest -q -p no:cacheprovider
+
+lint: $(STAMP)
+	$(VENV)/bin/ruff check app tests benchmarks tools sample_patterns
 
 bench: $(STAMP)
 	QT_QPA_PLATFORM=offscreen $(PY) benchmarks/run_all.py

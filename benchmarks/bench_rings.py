@@ -62,7 +62,6 @@ def main() -> None:
     del yy, xx
     flat = image.ravel()
     baseline, _ = best_of(lambda: np.bincount(r_int, weights=flat))
-    del r_int
 
     ellipse = Ellipse(0.012, 33.0)
     t_profile, _ = best_of(

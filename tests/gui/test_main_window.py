@@ -15,7 +15,7 @@ pytest.importorskip("PySide6")
 pytestmark = pytest.mark.gui
 
 from PySide6.QtCore import QPointF, Qt  # noqa: E402
-from PySide6.QtWidgets import QApplication, QFileDialog, QMessageBox  # noqa: E402
+from PySide6.QtWidgets import QApplication, QFileDialog  # noqa: E402
 
 from saedkit.core.detection.centre import manual_centre  # noqa: E402
 from saedkit.core.imageio import write_tiff  # noqa: E402
