@@ -35,7 +35,9 @@ def run(args):
         lines = [f"{phase.name}  {phase.space_group.hm} (No. {phase.space_group.number})  "
                  f"a={phase.cell.a:.5g} b={phase.cell.b:.5g} c={phase.cell.c:.5g} Å  "
                  f"α={phase.cell.alpha:g} β={phase.cell.beta:g} γ={phase.cell.gamma:g}°",
-                 f"source: {phase.source or '(none given)'}", "", "   hkl        d (Å)   mult   rel. I"]
+                 f"source: {phase.source or '(none given)'}"]
+        lines += [f"note: {n}" for n in phase.notes]
+        lines += ["", "   hkl        d (Å)   mult   rel. I"]
         imax = max((r.intensity for r in rings), default=1.0)
         for r in rings:
             lines.append(f"  {format_indices(r.hkl):10s} {r.d_A:8.4f} {r.multiplicity:6d} {100 * r.intensity / imax:8.1f}")
@@ -47,7 +49,7 @@ def run(args):
         entries.append({
             "name": entry.name, "aliases": list(entry.aliases), "role": entry.role,
             "space_group": phase.space_group.hm, "space_group_number": phase.space_group.number,
-            "cell": phase.cell.to_dict(), "source": phase.source,
+            "cell": phase.cell.to_dict(), "source": phase.source, "notes": list(phase.notes),
         })
         first = phase.source.split(". B values")[0]
         lines.append(f"{entry.name:6s} {phase.space_group.hm:12s} {phase.cell.a:9.5f} {phase.cell.c:9.5f}  "

@@ -16,6 +16,19 @@ from saedkit.core.crystallography.structure_factors import (
 )
 
 
+def _f_table(element, s_per_A):
+    """f_e(s) = Σ a_i exp(−b_i s²) from the tabulated 5-Gaussian coefficients of International Tables
+    Vol. C Table 4.3.2.2 (Peng et al., Acta Cryst. A52, 257, 1996), as gemmi stores them — not saedkit's f."""
+    import gemmi
+
+    return gemmi.Element(element).c4322.calculate_sf(s_per_A**2)
+
+
+def _s(a_A, hkl):
+    """s = sin θ/λ = 1/(2d) for a cubic cell, d = a/√(h²+k²+l²)."""
+    return math.sqrt(sum(i * i for i in hkl)) / (2 * a_A)
+
+
 def _zero_b(phase):
     """The same phase with B = 0 on every site (the reference values are at B = 0)."""
     sites = [Site(s.element, s.x, s.y, s.z, s.occupancy, 0.0, s.label) for s in phase.sites]
@@ -40,26 +53,42 @@ def test_mott_bethe_cross_check(el, s):
 
 
 def test_silicon_structure_factors_closed_forms():
-    # Diamond cubic, B = 0: |F(111)| = 4√2 f, |F(220)| = 8 f, F(200) = F(222) = 0 (8 atoms per cell;
-    # International Tables Vol. A, Fd-3m 8a). Reference values 18.431 Å and 14.921 Å (REFERENCES.md, gemmi).
+    # Diamond cubic, B = 0: |F(111)| = 4√2 f, |F(220)| = 8 f, F(200) = F(222) = 0, |F(400)| = 8 f
+    # (8 atoms per cell; International Tables Vol. A, Fd-3m 8a), f from the table.
+    # Reference values 18.431 Å and 14.921 Å (REFERENCES.md).
     si = _zero_b(find_phase("Si"))
+    a = si.cell.a
     F = np.abs(calculate_structure_factor_array(si, [[1, 1, 1], [2, 2, 0], [2, 0, 0], [2, 2, 2], [4, 0, 0]]))
-    f = lambda hkl: calculate_scattering_factor_array("Si", 1 / (2 * si.calculate_d_A(hkl)))  # noqa: E731
-    assert F[0] == pytest.approx(4 * math.sqrt(2) * f((1, 1, 1)), rel=1e-9)
+    assert len(si.atom_positions[0]) == 8
+    assert F[0] == pytest.approx(4 * math.sqrt(2) * _f_table("Si", _s(a, (1, 1, 1))), rel=1e-5)
     assert F[0] == pytest.approx(18.431, abs=0.002)
-    assert F[1] == pytest.approx(8 * f((2, 2, 0)), rel=1e-9)
+    assert F[1] == pytest.approx(8 * _f_table("Si", _s(a, (2, 2, 0))), rel=1e-5)
     assert F[1] == pytest.approx(14.921, abs=0.002)
     assert F[2] < 1e-9 and F[3] < 1e-9
-    assert F[4] == pytest.approx(8 * f((4, 0, 0)), rel=1e-9)
+    assert F[4] == pytest.approx(8 * _f_table("Si", _s(a, (4, 0, 0))), rel=1e-5)
 
 
 def test_gold_structure_factors_closed_form():
-    # fcc, B = 0: |F| = 4 f for unmixed hkl; 27.002 Å (111) and 24.495 Å (200) (REFERENCES.md)
+    # fcc, B = 0: |F| = 4 f for unmixed hkl, 0 for mixed (International Tables Vol. A, Fm-3m 4a);
+    # 27.002 Å (111) and 24.495 Å (200) (REFERENCES.md)
     au = _zero_b(find_phase("Au"))
-    F = np.abs(calculate_structure_factor_array(au, [[1, 1, 1], [2, 0, 0], [1, 0, 0], [2, 1, 0]]))
+    hkls = [(1, 1, 1), (2, 0, 0), (2, 2, 0), (3, 1, 1), (1, 0, 0), (2, 1, 0)]
+    F = np.abs(calculate_structure_factor_array(au, hkls))
+    for h, value in zip(hkls[:4], F[:4]):
+        assert value == pytest.approx(4 * _f_table("Au", _s(au.cell.a, h)), rel=1e-5), h
     assert F[0] == pytest.approx(27.002, abs=0.002)
     assert F[1] == pytest.approx(24.495, abs=0.002)
-    assert F[2] < 1e-9 and F[3] < 1e-9
+    assert F[4] < 1e-9 and F[5] < 1e-9
+
+
+def test_iron_structure_factors_closed_form():
+    # bcc, B = 0: |F| = 2 f for h + k + l even, 0 for odd (International Tables Vol. A, Im-3m 2a)
+    fe = _zero_b(find_phase("Fe"))
+    hkls = [(1, 1, 0), (2, 0, 0), (2, 1, 1), (3, 1, 0), (1, 0, 0), (1, 1, 1)]
+    F = np.abs(calculate_structure_factor_array(fe, hkls))
+    for h, value in zip(hkls[:4], F[:4]):
+        assert value == pytest.approx(2 * _f_table("Fe", _s(fe.cell.a, h)), rel=1e-5), h
+    assert F[4] < 1e-9 and F[5] < 1e-9
 
 
 def test_debye_waller_and_relativistic_factor():
@@ -116,10 +145,13 @@ def test_hcp_rules():
     assert r[(0, 0, 3)] == (False, True, False)
     assert r[(0, 0, 2)][0]
     assert r[(3, 0, 1)] == (False, False, True)
-    hkls = [(0, 0, 2), (1, 0, 1), (1, 0, 0)]
+    hkls = [(0, 0, 2), (1, 1, 0), (1, 0, 1), (1, 0, 0), (1, 0, 2), (3, 0, 1)]
     F2 = np.abs(calculate_structure_factor_array(ti, hkls)) ** 2
-    f2 = [calculate_scattering_factor_array("Ti", 1 / (2 * ti.calculate_d_A(h))) ** 2 for h in hkls]
-    assert F2 / np.array(f2) == pytest.approx([4, 3, 1], rel=1e-6)
+    # s = 1/(2d), hexagonal: 1/d² = 4/3 (h² + hk + k²)/a² + l²/c²; f from the table
+    a, c = ti.cell.a, ti.cell.c
+    f2 = [_f_table("Ti", 0.5 * math.sqrt(4 / 3 * (h * h + h * k + k * k) / a**2 + l * l / c**2)) ** 2
+          for h, k, l in hkls]
+    assert F2 / np.array(f2) == pytest.approx([4, 4, 3, 1, 1, 0], rel=1e-5, abs=1e-9)
 
 
 def test_rock_salt_mixed_and_rutile_rules():

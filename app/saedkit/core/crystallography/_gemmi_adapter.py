@@ -26,6 +26,7 @@ __all__ = [
     "xray_sf",
     "read_cif_block",
     "CifContent",
+    "find_setting_choices",
 ]
 
 
@@ -97,6 +98,30 @@ def find_space_group(symbol_or_number: str | int) -> SpaceGroupData:
     return _from_gemmi(sg)
 
 
+def find_setting_choices(symbol_or_number: str | int) -> tuple[SpaceGroupData, ...]:
+    """The settings a bare space-group symbol leaves open, or ``()`` when it names one.
+
+    A symbol without ``:1``/``:2`` of a group with two origin choices (e.g.
+    ``F d -3 m``, ``P n -3 m``) returns both origin choices (1 first); a
+    rhombohedral symbol without ``:H``/``:R`` (e.g. ``R -3 c``) returns the
+    hexagonal and the rhombohedral axes (H first). A symbol that already
+    names its setting, or a group with only one, returns ``()``.
+    """
+    text = str(symbol_or_number).strip()
+    if text.isdigit():
+        sg = gemmi.find_spacegroup_by_number(int(text)) if 1 <= int(text) <= 230 else None
+        if sg is None:
+            return ()
+        text = sg.hm
+    if ":" in text:
+        return ()
+    for pair in ((":1", ":2"), (":H", ":R")):
+        found = [gemmi.find_spacegroup_by_name(text + suffix) for suffix in pair]
+        if all(sg is not None for sg in found) and found[0].ext != found[1].ext:
+            return tuple(_from_gemmi(sg) for sg in found)
+    return ()
+
+
 def space_group_from_operations(ops_xyz: list[str]) -> SpaceGroupData:
     """Identify the space group (and setting) from symmetry operations in xyz form."""
     try:
@@ -163,6 +188,27 @@ class CifContent:
     name: str
     formula: str
     source: str
+    #: the settings the CIF's bare symbol leaves open (see find_setting_choices); () when settled
+    setting_choices: tuple[SpaceGroupData, ...] = ()
+    #: _cell_formula_units_Z, when given
+    formula_units_z: float | None = None
+    #: _atom_site_symmetry_multiplicity of each site (None where not given)
+    site_multiplicities: tuple[int | None, ...] = ()
+    #: what the reader had to assume (e.g. the text encoding)
+    notes: tuple[str, ...] = ()
+
+
+def _decode_cif_bytes(raw: bytes, path: str) -> tuple[str, tuple[str, ...]]:
+    """CIF text from bytes: UTF-8 (ASCII included), else Latin-1 with a note naming the first bad byte."""
+    try:
+        return raw.decode("utf-8"), ()
+    except UnicodeDecodeError as exc:
+        line = raw.count(b"\n", 0, exc.start) + 1
+        bad = raw[exc.start:exc.start + 1].hex()
+        note = (f"{path}: the file is not UTF-8 text (byte 0x{bad} on line {line}); it was read as "
+                "Latin-1, so names and other text may show wrong characters (numbers are unaffected); "
+                "save it as UTF-8 or ASCII to silence this")
+        return raw.decode("latin-1"), (note,)
 
 
 def _num(block, tag: str, path: str) -> float | None:
@@ -192,9 +238,17 @@ def read_cif_block(path: str, *, text: str | None = None) -> CifContent:
         With the file name, for a file that cannot be parsed, has no cell,
         no space group or no atom sites.
     """
+    notes: tuple[str, ...] = ()
+    if text is None:
+        try:
+            with open(path, "rb") as fh:
+                raw = fh.read()
+        except OSError as exc:
+            raise CrystalError(f"{path}: cannot read the CIF file ({exc.strerror or exc})") from None
+        text, notes = _decode_cif_bytes(raw, str(path))
     try:
-        doc = gemmi.cif.read_string(text) if text is not None else gemmi.cif.read_file(str(path))
-    except (RuntimeError, ValueError, OSError) as exc:
+        doc = gemmi.cif.read_string(text)
+    except (RuntimeError, ValueError, OSError, UnicodeError) as exc:
         raise CrystalError(f"{path}: not a readable CIF file ({str(exc).splitlines()[0][:200]})") from None
     if len(doc) == 0:
         raise CrystalError(f"{path}: the CIF has no data block")
@@ -218,23 +272,29 @@ def read_cif_block(path: str, *, text: str | None = None) -> CifContent:
         ops = [gemmi.cif.as_string(s) for s in block.find_values("_symmetry_equiv_pos_as_xyz")]
     hm = _text(block, "_space_group_name_H-M_alt", "_symmetry_space_group_name_H-M")
     number = _text(block, "_space_group_IT_number", "_symmetry_Int_Tables_number")
+    choices: tuple[SpaceGroupData, ...] = ()
     try:
         if ops:
             sg = space_group_from_operations(ops)
         elif hm:
             sg = find_space_group(hm)
+            choices = find_setting_choices(hm)
         elif number:
             sg = find_space_group(number)
+            choices = find_setting_choices(number)
         else:
             raise CrystalError("the CIF names no space group and lists no symmetry operations")
     except CrystalError as exc:
         raise CrystalError(f"{path}: {exc}") from None
+    z = _num(block, "_cell_formula_units_Z", path)
 
     table = block.find("_atom_site_", ["label", "?type_symbol", "fract_x", "fract_y", "fract_z",
-                                       "?occupancy", "?B_iso_or_equiv", "?U_iso_or_equiv"])
+                                       "?occupancy", "?B_iso_or_equiv", "?U_iso_or_equiv",
+                                       "?symmetry_multiplicity"])
     if len(table) == 0:
         raise CrystalError(f"{path}: the CIF has no atom sites (_atom_site_fract_x missing)")
     sites = []
+    multiplicities: list[int | None] = []
     for row in table:
         label = gemmi.cif.as_string(row[0])
         sym = gemmi.cif.as_string(row[1]) if row.has(1) else label
@@ -256,8 +316,17 @@ def read_cif_block(path: str, *, text: str | None = None) -> CifContent:
         else:
             b_iso = 0.5  # a typical room-temperature value (common practice) when the CIF gives none
         sites.append((label, element, *xyz, occ, b_iso))
+        mult = None
+        if row.has(8) and row[8] not in ("?", "."):
+            try:
+                mult = int(round(float(gemmi.cif.as_number(row[8]))))
+            except (RuntimeError, ValueError):
+                raise CrystalError(f"{path}: site {label}: multiplicity {row[8]!r} is not a number") from None
+        multiplicities.append(mult)
 
     name = _text(block, "_chemical_name_common", "_chemical_name_mineral", "_chemical_name_systematic") or block.name
     formula = _text(block, "_chemical_formula_sum", "_chemical_formula_structural")
     source = _text(block, "_publ_section_references", "_citation_journal_full", "_journal_name_full")
-    return CifContent(block.name, tuple(cell), sg, sites, name, formula, source)
+    return CifContent(block.name, tuple(cell), sg, sites, name, formula, source,
+                      setting_choices=choices, formula_units_z=z,
+                      site_multiplicities=tuple(multiplicities), notes=notes)

@@ -19,6 +19,7 @@ References
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
@@ -235,6 +236,8 @@ class Phase:
     formula: str = ""
     source: str = ""
     path: str | None = None
+    #: what the reader assumed or decided (origin choice, axes, encoding); shown with the phase
+    notes: tuple[str, ...] = ()
 
     @property
     def crystal_system(self) -> str:
@@ -253,21 +256,9 @@ class Phase:
         Each site is expanded by the space-group operations and duplicates
         (special positions) are merged, so occupancies are crystallographic.
         """
-        rot = self.space_group.rotations
-        tra = self.space_group.translations
         xyz_all, occ_all, b_all, el_all = [], [], [], []
         for s in self.sites:
-            p = np.array([s.x, s.y, s.z])
-            # 0.333333 in a CIF means 1/3: snap to multiples of 1/24 so that
-            # site-only zeros (hcp 0001) come out exactly zero
-            snapped = np.round(p * 24) / 24
-            p = np.where(np.abs(p - snapped) < 5e-5, snapped, p)
-            images = (np.einsum("nij,j->ni", rot, p) + tra) % 1.0
-            images[np.isclose(images, 1.0, atol=1e-6)] = 0.0
-            uniq: list[np.ndarray] = []
-            for q in images:
-                if not any(np.all(np.abs(((q - u) + 0.5) % 1.0 - 0.5) < 1e-4) for u in uniq):
-                    uniq.append(q)
+            uniq = _expand_site(s, self.space_group)
             xyz_all.extend(uniq)
             occ_all.extend([s.occupancy] * len(uniq))
             b_all.extend([s.b_iso_A2] * len(uniq))
@@ -331,6 +322,7 @@ class Phase:
             ],
             "source": self.source,
             "path": self.path,
+            "notes": list(self.notes),
         }
 
     def to_cif(self) -> str:
@@ -355,6 +347,22 @@ class Phase:
         for s in self.sites:
             lines.append(f"{s.label} {s.element} {s.x:.6f} {s.y:.6f} {s.z:.6f} {s.occupancy:.4f} {s.b_iso_A2:.4f}")
         return "\n".join(lines) + "\n"
+
+
+def _expand_site(site: Site, sg: SpaceGroupData) -> list[np.ndarray]:
+    """The distinct images of one site under the space group (special positions merged)."""
+    p = np.array([site.x, site.y, site.z])
+    # 0.333333 in a CIF means 1/3: snap to multiples of 1/24 so that
+    # site-only zeros (hcp 0001) come out exactly zero
+    snapped = np.round(p * 24) / 24
+    p = np.where(np.abs(p - snapped) < 5e-5, snapped, p)
+    images = (np.einsum("nij,j->ni", sg.rotations, p) + sg.translations) % 1.0
+    images[np.isclose(images, 1.0, atol=1e-6)] = 0.0
+    uniq: list[np.ndarray] = []
+    for q in images:
+        if not any(np.all(np.abs(((q - u) + 0.5) % 1.0 - 0.5) < 1e-4) for u in uniq):
+            uniq.append(q)
+    return uniq
 
 
 def _cif_block_name(name: str) -> str:
@@ -429,14 +437,130 @@ def read_phase_cif(path: str | Path, *, text: str | None = None) -> Phase:
     if text is None and not p.is_file():
         raise CrystalError(f"{p}: no such CIF file")
     content = _gm.read_cif_block(str(p), text=text)
+    notes = list(content.notes)
     try:
         cell = UnitCell(*content.cell)
         sites = tuple(Site(el, x, y, z, occ, b, label) for label, el, x, y, z, occ, b in content.sites)
+        sg = content.space_group
+        if content.setting_choices:
+            sg, note = _choose_setting(cell, sites, content)
+            notes.append(note)
         name = content.name.strip() or p.stem
-        phase = make_phase(name, cell, content.space_group, sites, formula=content.formula, source=content.source)
+        phase = make_phase(name, cell, sg, sites, formula=content.formula, source=content.source)
     except CrystalError as exc:
         raise CrystalError(f"{p}: {exc}") from None
-    return Phase(phase.name, phase.cell, phase.space_group, phase.sites, phase.formula, phase.source, str(p))
+    return Phase(phase.name, phase.cell, phase.space_group, phase.sites, phase.formula, phase.source, str(p),
+                 tuple(notes))
+
+
+_FORMULA_RE = re.compile(r"([A-Z][a-z]?)\s*(\d*\.?\d*)")
+
+
+def _parse_formula(text: str) -> dict[str, float]:
+    """Element counts of a CIF formula such as ``'Mg Al2 O4'`` ({} when it cannot be read)."""
+    counts: dict[str, float] = {}
+    for el, n in _FORMULA_RE.findall(str(text)):
+        try:
+            el = _gm.check_element(el)
+        except CrystalError:
+            return {}
+        counts[el] = counts.get(el, 0.0) + (float(n) if n else 1.0)
+    return counts
+
+
+def _setting_problems(cell: UnitCell, sites: tuple[Site, ...], sg: SpaceGroupData, content) -> tuple[list[str], int]:
+    """What contradicts reading the sites in one setting, and the number of atoms per cell it gives."""
+    problems: list[str] = []
+    xyz, owner, counts = [], [], {}
+    for i, s in enumerate(sites):
+        images = _expand_site(s, sg)
+        mult = content.site_multiplicities[i] if i < len(content.site_multiplicities) else None
+        if mult is not None and mult != len(images):
+            problems.append(f"site {s.label} gives {len(images)} atoms, the CIF says multiplicity {mult}")
+        xyz.extend(images)
+        owner.extend([i] * len(images))
+        counts[s.element] = counts.get(s.element, 0.0) + s.occupancy * len(images)
+    n_atoms = len(xyz)
+    formula = _parse_formula(content.formula)
+    if formula and set(formula) == set(counts):
+        z = content.formula_units_z
+        ratios = {el: counts[el] / formula[el] for el in formula}
+        if z is not None and z > 0:
+            off = {el: r for el, r in ratios.items() if abs(r - z) > 0.02 * z}
+            if off:
+                got = ", ".join(f"{counts[el]:g} {el}" for el in formula)
+                want = ", ".join(f"{z * formula[el]:g} {el}" for el in formula)
+                problems.append(f"the cell holds {got}, while Z = {z:g} of {content.formula!r} needs {want}")
+        elif max(ratios.values()) > 1.02 * min(ratios.values()):
+            got = ", ".join(f"{counts[el]:g} {el}" for el in formula)
+            problems.append(f"the cell holds {got}, not in the proportions of {content.formula!r}")
+    if 1 < n_atoms <= 2000:
+        f = np.array(xyz)
+        occ = np.array([sites[i].occupancy for i in owner])
+        diff = f[:, None, :] - f[None, :, :]
+        diff -= np.round(diff)
+        dist = np.linalg.norm(diff @ cell.direct_basis.T, axis=2)
+        np.fill_diagonal(dist, np.inf)
+        close = np.argwhere(np.triu(dist < 0.5, 1) & (occ[:, None] + occ[None, :] > 1 + 1e-3))
+        if len(close):
+            i, j = close[0]
+            problems.append(f"atoms of sites {sites[owner[i]].label} and {sites[owner[j]].label} come "
+                            f"{dist[i, j]:.2f} Å apart")
+    return problems, n_atoms
+
+
+def _choose_setting(cell: UnitCell, sites: tuple[Site, ...], content) -> tuple[SpaceGroupData, str]:
+    """Pick the origin choice or axes a bare space-group symbol leaves open, with a note saying why.
+
+    Hexagonal or rhombohedral axes follow from the cell's shape. Between two
+    origin choices, the sites are expanded in each: a setting is ruled out
+    when a site's image count differs from its stated multiplicity, when the
+    element counts contradict the formula (and Z), or when fully occupied
+    atoms come closer than 0.5 Å. When both remain, the one placing the
+    sites on positions of higher symmetry (fewer atoms per cell) is taken,
+    and on a tie origin choice 2. Raises CrystalError when neither fits.
+    """
+    first, second = content.setting_choices
+    symbol = content.space_group.hm
+    a, b, c, al, be, ga = cell.parameters
+    if first.setting.endswith(":H"):
+        if math.isclose(a, b, rel_tol=1e-4) and np.allclose([al, be], 90, atol=1e-3) and abs(ga - 120) < 1e-3:
+            return first, (f"the CIF names {symbol!r} without symmetry operations or axes; the cell "
+                           f"(a = b, γ = 120°) is on hexagonal axes, so it was read as {first.setting!r} "
+                           "(add ':H' to the symbol to state it)")
+        if np.allclose([a, a], [b, c], rtol=1e-4) and np.allclose([al, al], [be, ga], atol=1e-3):
+            return second, (f"the CIF names {symbol!r} without symmetry operations or axes; the cell "
+                            f"(a = b = c, α = β = γ) is on rhombohedral axes, so it was read as "
+                            f"{second.setting!r} (add ':R' to the symbol to state it)")
+        raise CrystalError(f"space group {symbol!r}: the cell {cell.parameters} fits neither hexagonal axes "
+                           "(a = b, α = β = 90°, γ = 120°) nor rhombohedral axes (a = b = c, α = β = γ); "
+                           "check the cell, or add ':H' or ':R' to the symbol")
+    (p1, n1), (p2, n2) = (_setting_problems(cell, sites, sg, content) for sg in (first, second))
+    head = f"the CIF names {symbol!r} (two origin choices) without symmetry operations; "
+    if p1 and p2:
+        raise CrystalError(
+            f"space group {symbol!r}: the atom sites fit neither origin choice (origin choice 1: "
+            f"{'; '.join(p1)}; origin choice 2: {'; '.join(p2)}); check the coordinates, or add ':1' or "
+            "':2' to the symbol")
+    if p2:
+        return first, (head + f"read in origin choice 1 ({first.setting!r}): {n1} atoms per cell; origin "
+                       f"choice 2 was ruled out ({'; '.join(p2)}). Add ':1' to the symbol to state it")
+    if p1:
+        return second, (head + f"read in origin choice 2 ({second.setting!r}): {n2} atoms per cell; origin "
+                        f"choice 1 was ruled out ({'; '.join(p1)}). Add ':2' to the symbol to state it")
+    if n1 < n2:
+        return first, (head + f"both fit the sites; origin choice 1 ({first.setting!r}) puts them on positions "
+                       f"of higher symmetry ({n1} atoms per cell, against {n2} in origin choice 2) and was "
+                       "taken. The CIF gives no Z or site multiplicities to confirm it: add ':2' to the "
+                       "symbol if its coordinates are origin choice 2, or ':1' to state this one")
+    if n2 < n1:
+        return second, (head + f"both fit the sites; origin choice 2 ({second.setting!r}) puts them on positions "
+                        f"of higher symmetry ({n2} atoms per cell, against {n1} in origin choice 1) and was "
+                        "taken. The CIF gives no Z or site multiplicities to confirm it: add ':1' to the "
+                        "symbol if its coordinates are origin choice 1, or ':2' to state this one")
+    return second, (head + f"both fit the sites equally ({n2} atoms per cell); origin choice 2 "
+                    f"({second.setting!r}, the usual choice) was taken. Add ':1' to the symbol if the "
+                    "coordinates are origin choice 1, or ':2' to state this one")
 
 
 def to_four_index_plane(hkl) -> tuple[int, int, int, int]:

@@ -58,7 +58,7 @@ def read_library_phase(name: str) -> Phase:
             with resources.as_file(ref) as path:
                 phase = read_phase_cif(path)
             return Phase(entry.name, phase.cell, phase.space_group, phase.sites,
-                         phase.formula, phase.source, None)
+                         phase.formula, phase.source, None, phase.notes)
     raise CrystalError(f"no built-in phase named {name!r}")
 
 
