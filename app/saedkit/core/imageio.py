@@ -443,12 +443,14 @@ def memory_limit_bytes() -> int | None:
 #: Measured: tests/robustness/test_image_robustness.py checks the estimate is above tracemalloc's peak.
 _BYTES_PER_PIXEL_EXTRA = 6
 _RAW_COPIES = 2
+#: Fixed working memory of a read (decoder tables, metadata), bytes.
+_READ_OVERHEAD_BYTES = 16 << 20
 
 
 def estimate_read_bytes(shape_2d: tuple[int, int], raw_nbytes: int) -> int:
     """Peak memory of reading one image of ``shape_2d`` whose raw page takes ``raw_nbytes``."""
     n_px = int(shape_2d[0]) * int(shape_2d[1])
-    return _RAW_COPIES * int(raw_nbytes) + _BYTES_PER_PIXEL_EXTRA * n_px
+    return _RAW_COPIES * int(raw_nbytes) + _BYTES_PER_PIXEL_EXTRA * n_px + _READ_OVERHEAD_BYTES
 
 
 def _check_memory(where: str, shape_2d: tuple[int, int], raw_nbytes: int, max_bytes: int | None) -> None:
