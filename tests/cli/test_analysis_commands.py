@@ -42,8 +42,8 @@ def patterns(tmp_path_factory):
     return out
 
 
-def _json(capsys, argv):
-    assert main(argv) == 0
+def _json(capsys, argv, status=0):
+    assert main(argv) == status
     return json.loads(capsys.readouterr().out)
 
 
@@ -114,7 +114,8 @@ def test_batch_survives_a_bad_file(patterns, capsys, tmp_path):
     bad.write_bytes(b"")
     paths = [str(patterns["ni011"][0]), str(bad), str(patterns["fe001"][0])]
     rec = _json(capsys, ["batch", *paths, "--phase", "Ni", "--phase", "Fe", "--camera-constant", str(K_TRUE),
-                         "--out", str(tmp_path / "b"), "--scheduler", "synchronous", "--json"])
+                         "--out", str(tmp_path / "b"), "--scheduler", "synchronous", "--json"], status=1)
+    # exit status 1 since one pattern failed (the others are still analysed and recorded)
     assert rec["n_patterns"] == 3 and rec["n_ok"] == 2
     by = {r["path"]: r for r in rec["patterns"]}
     assert by[str(bad)]["ok"] is False and "empty" in by[str(bad)]["error"]

@@ -494,7 +494,7 @@ def test_too_large_for_memory(tmp_path, rng, suffix, monkeypatch):
     assert read_pattern(path).shape == (64, 64)
 
 
-def test_memory_limit_is_half_the_physical_memory():
+def test_memory_limit_is_known_and_plausible():
     limit = memory_limit_bytes()
     assert limit is None or limit > 64 * 2**20  # any machine that runs the tests has more
 

@@ -16,12 +16,19 @@ examples:
 """
 
 
+def _printable(text: str) -> str:
+    """``text`` with control characters escaped (a file name cannot print fake lines)."""
+    return "".join(ch if ch.isprintable() else repr(ch)[1:-1] for ch in str(text))
+
+
 def register(sub) -> None:
     p = sub.add_parser(
         "batch", help="analyse many patterns in parallel",
         description="Index many spot patterns (with --phase) or calibrate many ring standards (with "
         "--standard) in parallel on Dask. One failing pattern never stops the others; OUT gets a "
-        "summary.csv (one row per pattern) and each pattern's JSON record (or its whole report with --bundle).",
+        "summary.csv (one row per pattern, rewritten as results arrive, saying what failed and why) and each "
+        "pattern's JSON record (or its whole report with --bundle). Exit status 1 when any pattern failed, "
+        "130 after Ctrl-C (the summary then lists what finished; --resume goes on).",
         epilog=EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("images", nargs="+", help="pattern images")
     p.add_argument("--out", metavar="DIR", help="folder for summary.csv and the records")
@@ -31,6 +38,8 @@ def register(sub) -> None:
     p.add_argument("--scheduler", choices=["threads", "processes", "synchronous"], default="threads",
                    help="local Dask scheduler (default threads)")
     p.add_argument("--cluster", metavar="ADDRESS", help="address of a running dask.distributed scheduler")
+    p.add_argument("--resume", action="store_true",
+                   help="skip the patterns OUT/summary.csv lists as finished (after an interrupted run)")
     add_match_options(p, phases_required=False)
     add_calibration_options(p)
     add_json_option(p)
@@ -38,7 +47,7 @@ def register(sub) -> None:
 
 
 def run(args):
-    from saedkit.batch import run_batch, write_batch_summary
+    from saedkit.batch import BatchInterrupted, run_batch, write_batch_summary
     from saedkit.core.errors import InputError
     from saedkit.core.crystallography.library import find_phase
 
@@ -57,8 +66,15 @@ def run(args):
                 options["calibration"] = source
             else:
                 options["camera_constant_px_A"] = K
-    items = run_batch(args.images, options=options, out_dir=args.out, bundle=args.bundle,
-                      scheduler=args.scheduler, workers=args.workers, cluster=args.cluster)
+    if args.resume and not args.out:
+        raise InputError("--resume needs --out (the folder of the interrupted run)")
+    interrupted = False
+    try:
+        items = run_batch(args.images, options=options, out_dir=args.out, bundle=args.bundle,
+                          scheduler=args.scheduler, workers=args.workers, cluster=args.cluster,
+                          resume=args.resume)
+    except BatchInterrupted as exc:
+        items, interrupted = exc.items, True
     summary = None
     if args.out:
         from pathlib import Path
@@ -74,7 +90,20 @@ def run(args):
             what = (f"{s.get('phase', '-')} [{s.get('zone', '')}] score {s.get('score', 0):.3f}" if "phase" in s
                     else f"K {s.get('camera_constant_px_A', float('nan')):.3f} px·Å" if "camera_constant_px_A" in s
                     else f"{s.get('n_spots', 0)} spots, no candidate")
-            lines.append(f"  ok    {it.path}: {what}")
+            lines.append(f"  ok    {_printable(it.path)}: {what}" + ("" if it.summary.get("calibrated", True)
+                                                                      else "  (uncalibrated: K left free)"))
         else:
-            lines.append(f"  FAIL  {it.path}: {it.error}")
+            lines.append(f"  FAIL  {_printable(it.path)}: {_printable(it.error)}")
+    rec["interrupted"] = interrupted
+    if interrupted:
+        lines.append("interrupted: run again with --resume to go on")
+    if interrupted or n_ok < len(items):
+        # print here, then give the exit status: 130 after Ctrl-C, 1 when any pattern failed
+        import sys
+
+        from saedkit.cli import _print_record
+
+        _print_record(rec, "\n".join(lines), args.json)
+        sys.stdout.flush()
+        return 130 if interrupted else 1
     return rec, "\n".join(lines)

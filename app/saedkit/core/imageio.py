@@ -19,6 +19,7 @@ import json
 import logging
 import math
 import os
+import stat
 import struct
 import sys
 from dataclasses import dataclass
@@ -35,6 +36,8 @@ __all__ = [
     "PatternImage",
     "calculate_sha256",
     "memory_limit_bytes",
+    "estimate_read_bytes",
+    "find_saturation_value",
     "pattern_from_array",
     "read_pattern",
     "write_tiff",
@@ -388,15 +391,66 @@ def _physical_memory_bytes() -> int | None:
     return None
 
 
+def _available_memory_bytes() -> int | None:
+    """Memory the system can give without swapping (``MemAvailable``), bytes, or None."""
+    try:
+        with open("/proc/meminfo", "rb") as fh:
+            for line in fh:
+                if line.startswith(b"MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    if sys.platform == "darwin":  # pragma: no cover - macOS has no /proc; physical memory as the bound
+        return _physical_memory_bytes()
+    return _physical_memory_bytes()
+
+
+def _address_space_left_bytes() -> int | None:
+    """What the process may still map under its ``RLIMIT_AS`` limit, bytes; None when unlimited."""
+    try:
+        import resource
+    except ImportError:  # pragma: no cover - Windows
+        return None
+    try:
+        soft, _hard = resource.getrlimit(resource.RLIMIT_AS)
+    except (OSError, ValueError):
+        return None
+    if soft == resource.RLIM_INFINITY or soft <= 0:
+        return None
+    used = 0
+    try:
+        with open("/proc/self/statm", "rb") as fh:
+            used = int(fh.read().split()[0]) * int(os.sysconf("SC_PAGE_SIZE"))
+    except (OSError, ValueError, IndexError, AttributeError):
+        pass
+    return max(int(soft) - used, 0)
+
+
 def memory_limit_bytes() -> int | None:
     """The most memory one image may take while it is read, bytes.
 
-    Half the machine's physical memory (the program keeps a few working
-    copies of the image besides the one being read); None when the physical
-    memory cannot be found, in which case no limit is applied.
+    The smaller of the memory available now (``MemAvailable`` on Linux, the
+    physical memory elsewhere) and what the process may still map under its
+    address-space limit (``resource.getrlimit(RLIMIT_AS)``); None when
+    neither can be asked, in which case no limit is applied.
     """
-    total = _physical_memory_bytes()
-    return None if total is None else total // 2
+    bounds = [b for b in (_available_memory_bytes(), _address_space_left_bytes()) if b is not None]
+    return min(bounds) if bounds else None
+
+
+#: Bytes needed per pixel while an image is read, besides the raw page: the float32 copy (4),
+#: the finite-value check and the mask (1 + 1), and the decoder's own buffer of the page (raw again).
+#: Measured: tests/robustness/test_image_robustness.py checks the estimate is above tracemalloc's peak.
+_BYTES_PER_PIXEL_EXTRA = 6
+_RAW_COPIES = 2
+#: Fixed working memory of a read (decoder tables, metadata), bytes.
+_READ_OVERHEAD_BYTES = 16 << 20
+
+
+def estimate_read_bytes(shape_2d: tuple[int, int], raw_nbytes: int) -> int:
+    """Peak memory of reading one image of ``shape_2d`` whose raw page takes ``raw_nbytes``."""
+    n_px = int(shape_2d[0]) * int(shape_2d[1])
+    return _RAW_COPIES * int(raw_nbytes) + _BYTES_PER_PIXEL_EXTRA * n_px + _READ_OVERHEAD_BYTES
 
 
 def _check_memory(where: str, shape_2d: tuple[int, int], raw_nbytes: int, max_bytes: int | None) -> None:
@@ -404,12 +458,12 @@ def _check_memory(where: str, shape_2d: tuple[int, int], raw_nbytes: int, max_by
     limit = memory_limit_bytes() if max_bytes is None else int(max_bytes)
     if limit is None:
         return
-    n_px = int(shape_2d[0]) * int(shape_2d[1])
-    need = int(raw_nbytes) + 5 * n_px  # the raw page, the float32 copy and the mask
+    need = estimate_read_bytes(shape_2d, raw_nbytes)
     if need > limit:
         raise ImageReadError(
             f"{where}: image of {shape_2d[0]}x{shape_2d[1]} pixels is too large to read: "
-            f"needs about {_format_bytes(need)}, limit {_format_bytes(limit)}"
+            f"needs about {_format_bytes(need)}, limit {_format_bytes(limit)} "
+            "(the memory available and the process's address-space limit)"
         )
 
 
@@ -456,7 +510,8 @@ def calculate_sha256(path: str | os.PathLike, *, chunk_bytes: int = 1 << 20) -> 
 
 
 def read_pattern(
-    path: str | os.PathLike, *, page: int = 0, max_bytes: int | None = None
+    path: str | os.PathLike, *, page: int = 0, max_bytes: int | None = None,
+    saturation_value: float | None = None,
 ) -> PatternImage:
     """Read a diffraction pattern from an image file.
 
@@ -471,7 +526,10 @@ def read_pattern(
     max_bytes : int, optional
         Most memory the image may take while read; default
         :func:`memory_limit_bytes`. Checked from the header before the pixels
-        are read.
+        are read (for a compressed TIFF, the decompressed size).
+    saturation_value : float, optional
+        The detector's saturation level, when the user knows it; by default
+        :func:`find_saturation_value` (the data's real bit depth).
 
     Returns
     -------
@@ -482,10 +540,12 @@ def read_pattern(
     Raises
     ------
     ImageReadError
-        If the file is missing, a folder, empty, of an unknown type, corrupt
-        or truncated, too large for memory; if the page does not exist; if the
-        pixels are not 2-D, complex, contain NaN or infinite values, or are
-        all equal. The message names the file.
+        If the file is missing, a folder, a device or pipe, empty, of an
+        unknown type, corrupt or truncated, too large for memory; if the page
+        does not exist; if the pixels are not 2-D, complex, contain NaN or
+        infinite values or values beyond the float32 range, or are all equal.
+        The message names the file. Bool pixels become 0/1, int64 and
+        float16 are converted to float32.
     InputError
         If ``page`` is not an integer.
 
@@ -520,7 +580,11 @@ def read_pattern(
             raise ImageReadError(f"{where}: file not found")
         if p.is_dir():
             raise ImageReadError(f"{where}: is a folder, not an image file")
-        size = p.stat().st_size
+        st = p.stat()
+        if not stat.S_ISREG(st.st_mode):
+            # a named pipe would block the open, a device never ends: never open them
+            raise ImageReadError(f"{where}: not a regular file (a pipe, device or socket), not an image file")
+        size = st.st_size
         with open(p, "rb") as fh:
             head = fh.read(1024)
     except OSError as exc:
@@ -542,15 +606,26 @@ def read_pattern(
     raw, meta = reader(p, where, page, max_bytes, kind)
 
     if raw.dtype.kind == "c":
-        raise ImageReadError(f"{where}: complex pixel type {raw.dtype} is not supported")
+        raise ImageReadError(f"{where}: complex pixel type {raw.dtype} is not supported "
+                             "(save the magnitude or the real part as a real image)")
     original_dtype = raw.dtype
-    if meta.pop("colour", False):
-        raw = _to_grey(raw)
-    raw = _squeeze_leading(raw)
-    _check_pixels(raw, where, ImageReadError)
-    data = np.asarray(raw, dtype=np.float32)
-    if data is raw or not data.flags.owndata:
-        data = data.copy()
+    if saturation_value is not None:
+        saturation_value = check_positive("saturation_value", saturation_value)
+    try:
+        if meta.pop("colour", False):
+            raw = _to_grey(raw)
+        raw = _squeeze_leading(raw)
+        if raw.dtype == np.bool_:
+            raw = raw.view(np.uint8)
+        _check_pixels(raw, where, ImageReadError)
+        _check_float32_range(raw, where)
+        saturation = saturation_value if saturation_value is not None else find_saturation_value(
+            raw, bits_per_sample=meta.get("bits_per_sample"), max_sample_value=meta.get("max_sample_value"))
+        data = np.asarray(raw, dtype=np.float32)
+        if data is raw or not data.flags.owndata:
+            data = data.copy()
+    except MemoryError as exc:
+        raise ImageReadError(f"{where}: not enough memory to read the image") from exc
     data.flags.writeable = False
     return PatternImage(
         data=data,
@@ -561,8 +636,56 @@ def read_pattern(
         voltage_kv=meta.get("voltage_kv"),
         camera_length_mm=meta.get("camera_length_mm"),
         page=page,
-        saturation_value=_saturation_for(original_dtype),
+        saturation_value=saturation,
     )
+
+
+def _check_float32_range(raw: np.ndarray, where: str) -> None:
+    """Refuse pixels a float32 cannot hold (they would become infinite)."""
+    if raw.dtype.kind == "f" and raw.dtype.itemsize > 4:
+        biggest = float(np.max(np.abs(raw)))
+        if biggest > float(np.finfo(np.float32).max):
+            raise ImageReadError(f"{where}: pixel value {biggest:.3g} is beyond the float32 range "
+                                 f"(±{float(np.finfo(np.float32).max):.3g}); rescale the image")
+
+
+def find_saturation_value(raw: np.ndarray, *, bits_per_sample: int | None = None,
+                          max_sample_value: float | None = None) -> float | None:
+    """The pixel value at which the detector saturates, from the data's real bit depth.
+
+    Parameters
+    ----------
+    raw : array
+        The pixels as stored (integer or float).
+    bits_per_sample : int, optional
+        Significant bits the file records (TIFF BitsPerSample).
+    max_sample_value : float, optional
+        The largest value the file says a sample takes (TIFF MaxSampleValue).
+
+    Returns
+    -------
+    float or None
+        For integer data: ``max_sample_value`` when recorded below the
+        type's maximum; else ``2**bits − 1`` when the file records fewer bits
+        than the container holds; else ``2**n − 1`` when the image's maximum
+        is exactly that (8 ≤ n < container bits) and at least 3 pixels reach
+        it (12-bit data in a 16-bit container saturates at 4095); else the
+        type's maximum. None for float data.
+    """
+    dtype = raw.dtype
+    if dtype.kind not in "ui":
+        return None
+    type_max = int(np.iinfo(dtype).max)
+    container_bits = dtype.itemsize * 8 - (1 if dtype.kind == "i" else 0)
+    if max_sample_value is not None and 0 < max_sample_value < type_max:
+        return float(max_sample_value)
+    if bits_per_sample is not None and 1 <= int(bits_per_sample) < container_bits:
+        return float((1 << int(bits_per_sample)) - 1)
+    top = int(raw.max())
+    n = top.bit_length()
+    if 8 <= n < container_bits and top == (1 << n) - 1 and int(np.count_nonzero(raw == top)) >= 3:
+        return float(top)
+    return float(type_max)
 
 
 def _sniff(head: bytes, suffix: str, size: int) -> str | None:
@@ -644,6 +767,7 @@ def _read_tiff(p: Path, where: str, page: int, max_bytes: int | None, kind: str)
             photometric = int(pg.photometric)
             colormap = getattr(pg, "colormap", None)
             meta.update(_tiff_pixel_size(pg) or {})
+            meta.update(_tiff_bit_depth(pg))
             first = pages[0] if page else pg
             description = getattr(first, "description", "") or ""
             meta.update(_saedkit_description(description))
@@ -665,6 +789,28 @@ def _read_tiff(p: Path, where: str, page: int, max_bytes: int | None, kind: str)
         raw = np.moveaxis(cmap[:, np.clip(raw, 0, cmap.shape[1] - 1)], 0, -1)
         meta["colour"] = True
     return raw, meta
+
+
+def _tiff_bit_depth(pg) -> dict[str, float]:
+    """BitsPerSample and MaxSampleValue of a TIFF page, when recorded."""
+    out: dict[str, float] = {}
+    try:
+        bps = pg.bitspersample
+        if isinstance(bps, (tuple, list)):
+            bps = bps[0]
+        out["bits_per_sample"] = int(bps)
+    except (AttributeError, TypeError, ValueError, IndexError):
+        pass
+    tag = pg.tags.get("MaxSampleValue")
+    if tag is not None:
+        value = tag.value
+        if isinstance(value, (tuple, list)):
+            value = value[0] if value else None
+        try:
+            out["max_sample_value"] = float(value)
+        except (TypeError, ValueError):
+            pass
+    return out
 
 
 def _tiff_yx(shape: tuple[int, ...], axes: str) -> tuple[int, int]:

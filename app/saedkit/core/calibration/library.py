@@ -30,19 +30,39 @@ next :meth:`CalibrationLibrary.save` first moves it aside to
 or repair) and then starts a new library with the saved record;
 :meth:`CalibrationLibrary.recover` does the same without saving anything.
 The path it was moved to is in :attr:`CalibrationLibrary.set_aside_path`.
+Damage of every kind counts: deep nesting, ``NaN``/``1e999`` numbers,
+numbers of thousands of digits, wrongly typed fields (the file is read with
+the bounds of :func:`saedkit.core._jsonsafe.loads_bounded`).
+
+Several processes at once
+-------------------------
+Every change (save, rename, delete, recover) reads, modifies and writes the
+file while holding an exclusive lock on ``calibrations.json.lock`` beside it
+(``fcntl.flock`` on POSIX, ``msvcrt.locking`` on Windows), so calibrations
+saved by several programs at the same moment are all kept.
+
+Names
+-----
+A name must not hold path separators (``/``, ``\\``) or control characters
+(which would print fake lines in a listing); names read from a hand-edited
+file that hold control characters are refused the same way.
 """
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import json
 import math
 import os
+import time
+import unicodedata
 from dataclasses import asdict, dataclass, fields, replace
 from pathlib import Path
 from typing import Any
 
 from saedkit.core._atomic import write_text_atomic
+from saedkit.core._jsonsafe import JsonLimitError, loads_bounded
 from saedkit.core.distortion import Ellipse
 from saedkit.core.errors import InputError, LibraryError
 
@@ -52,6 +72,7 @@ __all__ = [
     "CalibrationLibrary",
     "default_library_path",
     "resolve_calibration",
+    "check_calibration_name",
     "LIBRARY_FORMAT",
     "LIBRARY_VERSION",
 ]
@@ -139,6 +160,22 @@ def _str(rec: dict, name: str, where: str, *, default: Any = _MISSING, non_empty
     if non_empty and not v.strip():
         raise _bad(name, v, "must not be empty", where)
     return v
+
+
+def _escape_controls(text: str) -> str:
+    return "".join(repr(ch)[1:-1] if unicodedata.category(ch) in ("Cc", "Cf", "Zl", "Zp") else ch for ch in text)
+
+
+def check_calibration_name(name: str, *, where: str = "") -> str:
+    """Return ``name`` or raise LibraryError if it holds a path separator or a control character."""
+    loc = f" in {where}" if where else ""
+    if "/" in name or "\\" in name:
+        raise LibraryError(f"calibration name{loc} {name!r} must not hold a path separator ('/' or '\\')")
+    if any(unicodedata.category(ch) in ("Cc", "Cf", "Zl", "Zp") for ch in name):
+        raise LibraryError(f"calibration name{loc} '{_escape_controls(name)}' must not hold control characters")
+    if len(name) > 200:
+        raise LibraryError(f"calibration name{loc} is {len(name)} characters long; at most 200 allowed")
+    return name
 
 
 @dataclass(frozen=True)
@@ -262,14 +299,16 @@ class SavedCalibration:
             raise LibraryError(f"calibration record{' in ' + where if where else ''} must be a JSON object, "
                                f"got {type(rec).__name__}")
         name = _str(rec, "name", where, non_empty=True)
+        check_calibration_name(name, where=where)
         where_n = f"{where} ('{name}')" if where else f"'{name}'"
         binning = rec.get("binning", 1)
-        if isinstance(binning, bool) or not isinstance(binning, (int, float)) or binning != int(binning) or binning < 1:
-            raise _bad("binning", binning, "must be a whole number >= 1", where_n)
+        if (isinstance(binning, bool) or not isinstance(binning, (int, float)) or not math.isfinite(binning)
+            or binning != int(binning) or not 1 <= binning <= 1024):
+            raise _bad("binning", binning, "must be a whole number from 1 to 1024", where_n)
         date = _str(rec, "date", where_n, non_empty=True)
         try:
             _parse_date(date)
-        except ValueError:
+        except (ValueError, OverflowError):
             raise _bad("date", date, "must be an ISO 8601 date-time", where_n) from None
         exact = rec.get("exact_camera_equation", False)
         if not isinstance(exact, bool):
@@ -432,10 +471,10 @@ class CalibrationLibrary:
         hint = ("; the file is kept as it is — the next save moves it aside to "
                 f"{self.path.name}.broken-<time>, or run CalibrationLibrary.recover()")
         try:
-            doc = json.loads(text)
-        except json.JSONDecodeError as exc:
-            raise LibraryError(f"calibration library {self.path} is not valid JSON ({exc.msg} at line "
-                               f"{exc.lineno}){hint}") from None
+            doc = loads_bounded(text, what=f"calibration library {self.path}", max_depth=16,
+                                max_chars=50_000_000)
+        except JsonLimitError as exc:
+            raise LibraryError(f"{exc}{hint}") from None
         if not isinstance(doc, dict) or doc.get("format") != LIBRARY_FORMAT:
             raise LibraryError(f"calibration library {self.path} is not a saedkit calibration library "
                                f"(format must be {LIBRARY_FORMAT!r}){hint}")
@@ -452,6 +491,9 @@ class CalibrationLibrary:
                 cal = SavedCalibration.from_dict(rec, where=f"{self.path} record {i}")
             except LibraryError as exc:
                 raise LibraryError(f"{exc}{hint}") from None
+            except (TypeError, ValueError, OverflowError) as exc:
+                raise LibraryError(f"calibration library {self.path} record {i} is damaged "
+                                   f"({type(exc).__name__}: {exc}){hint}") from None
             if cal.name in names:
                 raise LibraryError(f"calibration library {self.path}: the name {cal.name!r} appears twice{hint}")
             names.add(cal.name)
@@ -465,6 +507,29 @@ class CalibrationLibrary:
             write_text_atomic(self.path, json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False) + "\n")
         except OSError as exc:
             raise LibraryError(f"calibration library {self.path} cannot be written: {exc}") from None
+
+    @property
+    def lock_path(self) -> Path:
+        """The lock file beside the library (held while the library is changed)."""
+        return self.path.with_name(self.path.name + ".lock")
+
+    @contextlib.contextmanager
+    def _locked(self, *, timeout_s: float = 60.0):
+        """Hold the library's exclusive lock (a read-modify-write of one process at a time)."""
+        try:
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+            fh = open(self.lock_path, "a+b")
+        except OSError as exc:
+            raise LibraryError(f"calibration library {self.path}: cannot open its lock file "
+                               f"{self.lock_path}: {exc}") from None
+        try:
+            _acquire(fh, timeout_s, self.lock_path)
+            try:
+                yield
+            finally:
+                _release(fh)
+        finally:
+            fh.close()
 
     def _move_aside(self) -> Path:
         stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
@@ -537,6 +602,10 @@ class CalibrationLibrary:
             raise InputError(f"save takes a SavedCalibration, got {type(calibration).__name__} "
                              "(use SavedCalibration.from_calibration)")
         self.set_aside_path = None
+        with self._locked():
+            return self._save_locked(calibration, overwrite=overwrite)
+
+    def _save_locked(self, calibration: SavedCalibration, *, overwrite: bool) -> SavedCalibration:
         try:
             recs = self._read()
         except LibraryError:
@@ -567,12 +636,14 @@ class CalibrationLibrary:
         new = str(new).strip()
         if not new:
             raise LibraryError("the new name of a calibration must not be empty")
-        recs = self._read()
-        cal = self.get(old)
-        if any(c.name == new for c in recs) and new != cal.name:
-            raise LibraryError(f"a calibration named {new!r} is already saved in {self.path}")
-        renamed = replace(cal, name=new)
-        self._write([renamed if c.name == cal.name else c for c in recs])
+        check_calibration_name(new)
+        with self._locked():
+            recs = self._read()
+            cal = self.get(old)
+            if any(c.name == new for c in recs) and new != cal.name:
+                raise LibraryError(f"a calibration named {new!r} is already saved in {self.path}")
+            renamed = replace(cal, name=new)
+            self._write([renamed if c.name == cal.name else c for c in recs])
         return renamed
 
     def delete(self, name: str) -> SavedCalibration:
@@ -583,9 +654,10 @@ class CalibrationLibrary:
         LibraryError
             When it is not saved or the file is broken.
         """
-        recs = self._read()
-        cal = self.get(name)
-        self._write([c for c in recs if c.name != cal.name])
+        with self._locked():
+            recs = self._read()
+            cal = self.get(name)
+            self._write([c for c in recs if c.name != cal.name])
         return cal
 
     def recover(self) -> Path | None:
@@ -594,15 +666,16 @@ class CalibrationLibrary:
         Does nothing (returns None) when the file is missing or fine.
         """
         self.set_aside_path = None
-        if not self.path.exists():
-            return None
-        try:
-            self._read()
-            return None
-        except LibraryError:
-            target = self._move_aside()
-            self._write([])
-            return target
+        with self._locked():
+            if not self.path.exists():
+                return None
+            try:
+                self._read()
+                return None
+            except LibraryError:
+                target = self._move_aside()
+                self._write([])
+                return target
 
     # -- queries
 
@@ -689,6 +762,47 @@ class CalibrationLibrary:
         return out
 
 
+def _acquire(fh, timeout_s: float, where: Path) -> None:
+    """Take an exclusive lock on the open file ``fh``, waiting up to ``timeout_s``."""
+    deadline = time.monotonic() + timeout_s
+    if os.name == "nt":  # pragma: no cover - Windows
+        import msvcrt
+
+        while True:
+            try:
+                fh.seek(0)
+                msvcrt.locking(fh.fileno(), msvcrt.LK_NBLCK, 1)
+                return
+            except OSError:
+                if time.monotonic() > deadline:
+                    raise LibraryError(f"the calibration library is locked by another program ({where}); "
+                                       "try again") from None
+                time.sleep(0.02)
+    import fcntl
+
+    while True:
+        try:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+            return
+        except BlockingIOError:
+            if time.monotonic() > deadline:
+                raise LibraryError(f"the calibration library is locked by another program ({where}); "
+                                   "try again") from None
+            time.sleep(0.01)
+
+
+def _release(fh) -> None:
+    if os.name == "nt":  # pragma: no cover - Windows
+        import msvcrt
+
+        fh.seek(0)
+        msvcrt.locking(fh.fileno(), msvcrt.LK_UNLCK, 1)
+        return
+    import fcntl
+
+    fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
+
+
 def resolve_calibration(name_or_file: str | os.PathLike, *, library: CalibrationLibrary | None = None
                         ) -> SavedCalibration:
     """A saved calibration from a JSON file or from the library by name.
@@ -710,11 +824,13 @@ def resolve_calibration(name_or_file: str | os.PathLike, *, library: Calibration
     p = Path(text).expanduser()
     if p.is_file():
         try:
-            doc = json.loads(p.read_text(encoding="utf-8"))
+            if p.stat().st_size > 50_000_000:
+                raise LibraryError(f"calibration file {p} is {p.stat().st_size} bytes; a calibration is a few kB")
+            doc = loads_bounded(p.read_text(encoding="utf-8"), what=f"calibration file {p}", max_depth=16)
         except (OSError, UnicodeDecodeError) as exc:
             raise LibraryError(f"calibration file {p} cannot be read: {exc}") from None
-        except json.JSONDecodeError as exc:
-            raise LibraryError(f"calibration file {p} is not valid JSON ({exc.msg} at line {exc.lineno})") from None
+        except JsonLimitError as exc:
+            raise LibraryError(str(exc)) from None
         if isinstance(doc, dict) and doc.get("format") == LIBRARY_FORMAT:
             recs = CalibrationLibrary(p)._parse(json.dumps(doc))
             if len(recs) != 1:
@@ -724,7 +840,10 @@ def resolve_calibration(name_or_file: str | os.PathLike, *, library: Calibration
             return recs[0]
         if isinstance(doc, dict) and isinstance(doc.get("calibration"), dict):
             doc = doc["calibration"]
-        return SavedCalibration.from_dict(doc, where=str(p))
+        try:
+            return SavedCalibration.from_dict(doc, where=str(p))
+        except (TypeError, ValueError, OverflowError) as exc:
+            raise LibraryError(f"calibration file {p} is damaged ({type(exc).__name__}: {exc})") from None
     if p.suffix.lower() == ".json" and not p.exists():
         raise LibraryError(f"calibration file {p} does not exist")
     lib = library if library is not None else CalibrationLibrary()

@@ -41,6 +41,7 @@ import numpy as np
 
 from saedkit import __version__
 from saedkit.core._atomic import write_text_atomic
+from saedkit.core._jsonsafe import JsonLimitError, loads_bounded
 from saedkit.core._validate import check_finite, check_positive, check_xy
 from saedkit.core.workflow.analysis import Analysis
 from saedkit.core.detection.centre import CentreResult
@@ -242,17 +243,37 @@ class PackedMask:
                 "data": base64.b64encode(self.packed).decode("ascii")}
 
     @classmethod
-    def from_dict(cls, record: dict) -> PackedMask:
-        """Read the record of :meth:`to_dict`."""
+    def from_dict(cls, record: dict, *, expected_shape: tuple[int, int] | None = None) -> PackedMask:
+        """Read the record of :meth:`to_dict`.
+
+        The shape is checked (against ``expected_shape`` when given) before
+        anything is unpacked, and the compressed data may not unpack to more
+        than the mask's size: a hand-edited shape or a zlib bomb is refused
+        without allocating.
+        """
         try:
-            if record.get("encoding") != "packbits-zlib-base64":
-                raise ValueError(f"unknown mask encoding {record.get('encoding')!r}")
-            shape = tuple(int(v) for v in record["shape"])
-            packed = base64.b64decode(record["data"])
-            out = cls(shape, packed, int(record.get("n_masked", 0)))
-            arr = out.to_array()  # check it unpacks
+            if not isinstance(record, dict) or record.get("encoding") != "packbits-zlib-base64":
+                raise ValueError(f"unknown mask encoding {record.get('encoding')!r}" if isinstance(record, dict)
+                                 else f"the mask must be an object, got {type(record).__name__}")
+            raw_shape = record["shape"]
+            if (not isinstance(raw_shape, list) or len(raw_shape) != 2
+                    or not all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in raw_shape)):
+                raise ValueError(f"the shape must be [rows, cols] of whole numbers > 0, got {raw_shape!r}")
+            shape = (int(raw_shape[0]), int(raw_shape[1]))
+            if expected_shape is not None and shape != tuple(expected_shape):
+                raise ValueError(f"the mask has shape {list(shape)}, the image {list(expected_shape)}")
+            n_bytes = -(-shape[0] * shape[1] // 8)
+            if not isinstance(record["data"], str) or len(record["data"]) > 4 * n_bytes + 1024:
+                raise ValueError("the mask data is not text of the mask's size")
+            packed = base64.b64decode(record["data"], validate=True)
+            d = zlib.decompressobj()
+            bits = d.decompress(packed, n_bytes)
+            if len(bits) != n_bytes or d.unconsumed_tail:
+                raise ValueError(f"the mask data unpacks to a size other than {n_bytes} bytes of shape {list(shape)}")
+            out = cls(shape, packed, 0)
+            arr = np.unpackbits(np.frombuffer(bits, dtype=np.uint8), count=shape[0] * shape[1])
             return cls(shape, packed, int(np.count_nonzero(arr)))
-        except (KeyError, TypeError, ValueError, zlib.error) as exc:
+        except (KeyError, TypeError, ValueError, zlib.error, base64.binascii.Error) as exc:
             raise SaedkitError(f"the session's mask cannot be read: {exc}") from None
 
 
@@ -1311,85 +1332,180 @@ class Session:
             If the file is not a saedkit session, cannot be parsed, or its
             image cannot be found or read, or has another shape.
         """
+        from saedkit.core.detection.spots import Spot
         from saedkit.core.imageio import read_pattern
+        from saedkit.core.indexing.matching_types import MatchResult
 
         p = Path(path)
         try:
-            record = json.loads(p.read_text(encoding="utf-8"))
+            if not p.exists():
+                raise FileNotFoundError(p)
+            if not p.is_file():
+                raise SaedkitError(f"{p}: not a regular file, so not a session file")
+            size = p.stat().st_size
+            if size > MAX_SESSION_BYTES:
+                raise SaedkitError(f"{p}: {size} bytes, more than the {MAX_SESSION_BYTES} a session file may have")
+            text = p.read_text(encoding="utf-8")
         except FileNotFoundError:
             raise SaedkitError(f"{p}: session file not found") from None
         except (OSError, UnicodeDecodeError) as exc:
             raise SaedkitError(f"{p}: cannot be read ({exc})") from None
-        except json.JSONDecodeError as exc:
-            raise SaedkitError(f"{p}: not a saedkit session (invalid JSON: {exc.msg} at line {exc.lineno})") from None
+        try:
+            record = loads_bounded(text, what="the file", max_depth=48, max_items=1_000_000)
+        except JsonLimitError as exc:
+            raise SaedkitError(f"{p}: not a saedkit session ({exc})") from None
         if not isinstance(record, dict) or record.get("format") != _FORMAT:
             raise SaedkitError(f"{p}: not a saedkit session file")
-        if int(record.get("format_version", 0)) > _FORMAT_VERSION:
+        version = record.get("format_version", 0)
+        if isinstance(version, bool) or not isinstance(version, int):
+            raise SaedkitError(f"{p}: field 'format_version' must be a whole number, got {version!r}")
+        if version > _FORMAT_VERSION:
             raise SaedkitError(f"{p}: written by a newer saedkit (session format "
-                               f"{record.get('format_version')}); update saedkit to read it")
+                               f"{version}); update saedkit to read it")
         warnings: list[str] = []
-        info = record.get("image") or {}
-        page = int(info.get("page") or 0)
+        info = _field(p, record, "image", dict, default={})
+        page = _field(p, info, "page", int, default=0, where="image")
+        if not 0 <= page <= 100_000:
+            raise SaedkitError(f"{p}: field 'image.page' must be between 0 and 100000, got {page!r}")
+        rec_path = _field(p, info, "path", str, default=None, where="image")
+        rel_path = _field(p, info, "relative_path", str, default=None, where="image")
+        rec_sha = _field(p, info, "sha256", str, default=None, where="image")
+        rec_shape = _field(p, info, "shape", list, default=None, where="image")
+        if rec_shape is not None and (len(rec_shape) != 2 or not all(
+                isinstance(n, int) and not isinstance(n, bool) and 0 < n < 1_000_000 for n in rec_shape)):
+            raise SaedkitError(f"{p}: field 'image.shape' must be [rows, cols] of whole numbers, got {rec_shape!r}")
         candidates: list[Path] = []
         if image_path is not None:
             candidates.append(Path(image_path))
         else:
-            if info.get("path"):
-                candidates.append(Path(info["path"]))
-            if info.get("relative_path"):
-                candidates.append(p.parent / info["relative_path"])
-            if info.get("path"):
-                candidates.append(p.parent / Path(info["path"]).name)
-        found = next((c for c in candidates if c.is_file()), None)
+            if rec_path:
+                candidates.append(Path(rec_path))
+            if rel_path:
+                candidates.append(p.parent / rel_path)
+            if rec_path:
+                candidates.append(p.parent / Path(rec_path).name)
+        found = next((c for c in candidates if _is_image_file(c)), None)
         if found is None:
-            where = info.get("path") or "(no path recorded)"
+            named = [c for c in candidates if c.exists()]
+            if named:
+                raise SaedkitError(f"{p}: the session's image {named[0]} is not an image file saedkit reads "
+                                   f"(a regular file ending in {', '.join(sorted(_IMAGE_SUFFIXES))})")
+            where = rec_path or "(no path recorded)"
             raise SaedkitError(f"{p}: the session's image {where} was not found; "
                                "move it back or open the session with the image's new location")
-        if image_path is None and info.get("path") and found != Path(info["path"]):
-            warnings.append(f"the image was not at {info['path']}; read {found} instead")
+        if image_path is None and rec_path and found != Path(rec_path):
+            warnings.append(f"the image was not at {rec_path}; read {found} instead")
         try:
             image = read_pattern(found, page=page)
         except ImageReadError as exc:
             raise SaedkitError(f"{p}: the session's image cannot be read: {exc}") from None
-        if info.get("sha256") and image.sha256 != info["sha256"]:
+        if rec_sha and image.sha256 != rec_sha:
             warnings.append(f"the image file {found} has changed since the session was saved "
                             "(its SHA-256 differs): check the results before using them")
-        if info.get("shape") and list(image.shape) != list(info["shape"]):
+        if rec_shape and list(image.shape) != list(rec_shape):
             raise SaedkitError(f"{p}: the image {found} now has shape {list(image.shape)}, "
-                               f"the session was made on {info['shape']}")
+                               f"the session was made on {rec_shape}")
         try:
-            settings = SessionSettings.from_dict(record.get("settings") or {})
+            settings = SessionSettings.from_dict(_field(p, record, "settings", dict, default={}))
             mask = None
-            if record.get("mask"):
-                packed = PackedMask.from_dict(record["mask"])
-                if packed.shape != tuple(image.shape):
-                    raise SaedkitError(f"{p}: the mask has shape {list(packed.shape)}, the image {list(image.shape)}")
+            mask_rec = _field(p, record, "mask", dict, default=None)
+            if mask_rec:
+                packed = PackedMask.from_dict(mask_rec, expected_shape=tuple(image.shape))
                 mask = packed
-            spots = tuple(_decode(record.get("spots")) or ())
-            origins = tuple(str(o) for o in (record.get("spot_origins") or ["auto"] * len(spots)))
+            spots = tuple(_decode(_field(p, record, "spots", list, default=[], decoded=True)) or ())
+            for i, spot in enumerate(spots):
+                if not isinstance(spot, Spot):
+                    raise SaedkitError(f"{p}: field 'spots' item {i} must be a spot record, got "
+                                       f"{type(spot).__name__}")
+            origins_rec = _field(p, record, "spot_origins", list, default=None)
+            origins = tuple(str(o) for o in (origins_rec or ["auto"] * len(spots)))
             if len(origins) != len(spots) or any(o not in SPOT_ORIGINS for o in origins):
                 raise SaedkitError(f"{p}: spot_origins does not match the spots")
-            match = _decode(record.get("match"))
-            chosen = int(record.get("chosen_candidate") or 0)
+            centre = _typed(p, record, "centre", (CentreResult,), "a centre record")
+            match = _typed(p, record, "match", (MatchResult,), "a zone-axis search record")
+            calibration = _typed(p, record, "calibration", None, "a calibration record",
+                                 needs="camera_constant_px_A")
+            ring_fit = _typed(p, record, "ring_fit", None, "a ring fit record")
+            phase_id = _typed(p, record, "phase_id", None, "a phase identification record")
+            chosen = _field(p, record, "chosen_candidate", int, default=0)
+            n_cand = len(getattr(match, "candidates", ()) or ()) if match is not None else 0
+            if not 0 <= chosen < max(n_cand, 1):
+                raise SaedkitError(f"{p}: field 'chosen_candidate' must be in [0, {max(n_cand, 1)}), got {chosen!r}")
+            phases = _field(p, record, "phases", list, default=[])
+            if not all(isinstance(x, str) for x in phases):
+                raise SaedkitError(f"{p}: field 'phases' must be a list of phase names, got {phases!r}")
             state = SessionState(
-                mask=mask, centre=_decode(record.get("centre")), spots=spots, spot_origins=origins,
-                ring_fit=_decode(record.get("ring_fit")), calibration=_decode(record.get("calibration")),
-                phases=tuple(str(x) for x in record.get("phases") or ()), match=match,
-                chosen_candidate=chosen, match_current=bool(record.get("match_current", True)),
-                phase_id=_decode(record.get("phase_id")), settings=settings,
+                mask=mask, centre=centre, spots=spots, spot_origins=origins,
+                ring_fit=ring_fit, calibration=calibration,
+                phases=tuple(phases), match=match,
+                chosen_candidate=chosen, match_current=_field(p, record, "match_current", bool, default=True),
+                phase_id=phase_id, settings=settings,
             )
         except SaedkitError as exc:
             if str(exc).startswith(str(p)):
                 raise
             raise SaedkitError(f"{p}: {exc}") from None
-        except (TypeError, ValueError, KeyError) as exc:
+        except (TypeError, ValueError, KeyError, AttributeError, OverflowError, MemoryError) as exc:
             raise SaedkitError(f"{p}: the session file is damaged ({type(exc).__name__}: {exc})") from None
         session = cls(image, settings=settings, path=p)
         session._state = state
         session._saved_state = state
         session.load_warnings = tuple(warnings)
-        session.recorded_path = record.get("session_path")
+        recorded = record.get("session_path")
+        session.recorded_path = recorded if isinstance(recorded, str) else None
         return session
+
+
+#: A session file larger than this is refused unread (a session with thousands of spots takes a few MB).
+MAX_SESSION_BYTES = 64_000_000
+#: The most elements one array of a session file may hold (bounds the work of loading).
+MAX_ARRAY_ELEMENTS = 20_000_000
+_IMAGE_SUFFIXES = (".tif", ".tiff", ".png", ".jpg", ".jpeg", ".npy", ".mrc", ".mrcs", ".map", ".st", ".ali")
+
+_TYPE_WORDS = {dict: "an object", list: "a list", str: "text", int: "a whole number", bool: "true or false"}
+
+
+def _field(p: Path, record: dict, name: str, kind: type, *, default: Any, where: str = "",
+           decoded: bool = False) -> Any:
+    """``record[name]`` checked to be of ``kind`` (``default`` when missing or null)."""
+    value = record.get(name)
+    if value is None:
+        return default
+    ok = isinstance(value, kind) and not (kind is int and isinstance(value, bool))
+    if decoded and kind is list and isinstance(value, dict) and set(value) == {"__tuple__"}:
+        ok = True
+    if not ok:
+        full = f"{where}.{name}" if where else name
+        shown = repr(value)
+        shown = shown if len(shown) <= 60 else shown[:57] + "..."
+        raise SaedkitError(f"{p}: field '{full}' must be {_TYPE_WORDS.get(kind, kind.__name__)}, got {shown}")
+    return value
+
+
+def _typed(p: Path, record: dict, name: str, kinds: tuple | None, what: str, *, needs: str | None = None) -> Any:
+    """Decode ``record[name]`` and check it is None or a record of ``kinds`` (any saedkit record when None)."""
+    value = _decode(record.get(name))
+    if value is None:
+        return None
+    ok = isinstance(value, kinds) if kinds else dataclasses.is_dataclass(value) and not isinstance(value, type)
+    if ok and needs is not None:
+        ok = hasattr(value, needs)
+    if not ok:
+        shown = repr(record.get(name))
+        shown = shown if len(shown) <= 60 else shown[:57] + "..."
+        raise SaedkitError(f"{p}: field '{name}' must be {what} (or null), got {shown}")
+    return value
+
+
+def _is_image_file(path: Path) -> bool:
+    """A regular file (not a device, pipe or folder) with an image suffix saedkit reads."""
+    import stat as _stat
+
+    try:
+        st = path.stat()
+    except (OSError, ValueError):
+        return False
+    return _stat.S_ISREG(st.st_mode) and path.suffix.lower() in _IMAGE_SUFFIXES
 
 
 # --------------------------------------------------------------------------- #
@@ -1454,11 +1570,18 @@ def _decode(data: Any) -> Any:
     if "__items__" in data and len(data) == 1:
         return {_freeze(_decode(k)): _decode(v) for k, v in data["__items__"]}
     if "__ndarray__" in data:
+        if not isinstance(data.get("dtype"), str) or data["dtype"] not in _ARRAY_DTYPES:
+            raise ValueError(f"array dtype {data.get('dtype')!r} is not allowed")
         dtype = np.dtype(data["dtype"])
-        if dtype.kind not in "biuf":
-            raise ValueError(f"array dtype {dtype} is not allowed")
-        flat = [float(v["__float__"]) if isinstance(v, dict) else v for v in data["__ndarray__"]]
-        return np.array(flat, dtype=dtype).reshape([int(n) for n in data["shape"]])
+        shape = data.get("shape")
+        values = data["__ndarray__"]
+        if (not isinstance(shape, list) or len(shape) > 8
+                or not all(isinstance(n, int) and not isinstance(n, bool) and 0 <= n for n in shape)):
+            raise ValueError(f"array shape must be a list of whole numbers >= 0, got {shape!r}")
+        if not isinstance(values, list) or math.prod(shape) != len(values) or len(values) > MAX_ARRAY_ELEMENTS:
+            raise ValueError(f"array of shape {shape} does not hold {math.prod(shape)} values")
+        flat = [float(v["__float__"]) if isinstance(v, dict) else v for v in values]
+        return np.array(flat, dtype=dtype).reshape(shape)
     if "__record__" in data or "__type__" in data:  # "__type__": session files of saedkit 0.1
         name = data.get("__record__", data.get("__type__"))
         cls = find_record_type(name)
@@ -1468,6 +1591,10 @@ def _decode(data: Any) -> Any:
         known = {f.name for f in dataclasses.fields(cls) if f.init}
         return cls(**{k: v for k, v in fields.items() if k in known})
     return {k: _decode(v) for k, v in data.items()}
+
+
+_ARRAY_DTYPES = {np.dtype(t).str for t in ("?", "i1", "i2", "i4", "i8", "u1", "u2", "u4", "u8", "f2", "f4", "f8")} \
+    | {np.dtype(t).newbyteorder(">").str for t in ("i2", "i4", "i8", "u2", "u4", "u8", "f2", "f4", "f8")} | {"|b1"}
 
 
 def _freeze(key: Any) -> Any:
