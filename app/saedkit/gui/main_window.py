@@ -52,6 +52,7 @@ from saedkit.gui.icons import icon
 from saedkit.gui.panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, RingPhasesPanel, SearchPanel
 from saedkit.gui.tools import TOOL_CLASSES, describe_pair
 from saedkit.gui.view import LAYER_NAMES, PatternView, calculate_argb_image
+from saedkit.gui.widgets import guard_wheel
 from saedkit.gui.workers import TaskRunner
 
 __all__ = ["MainWindow", "IMAGE_FILTER", "SESSION_FILTER"]
@@ -77,6 +78,29 @@ def _shown_hkl(hkl, candidate) -> tuple:
 
         return to_four_index_plane(hkl)
     return tuple(int(v) for v in hkl)
+
+
+def _redo_keys() -> list[QKeySequence]:
+    """Ctrl+Shift+Z and Ctrl+Y (and the platform's Redo), each once: a key bound twice is 'ambiguous'."""
+    keys: list[QKeySequence] = []
+    seen: set[str] = set()
+    for k in [*QKeySequence.keyBindings(QKeySequence.StandardKey.Redo), QKeySequence("Ctrl+Shift+Z"),
+              QKeySequence("Ctrl+Y")]:
+        text = k.toString(QKeySequence.SequenceFormat.PortableText)
+        if text and text not in seen:
+            seen.add(text)
+            keys.append(k)
+    return keys
+
+
+def _phases_to_search(session: Session) -> list[str]:
+    """The ticked phases; with none ticked, the whole built-in library (the same for spots and rings)."""
+    names = list(session.phases)
+    if not names:
+        from saedkit.core.crystallography.library import LIBRARY
+
+        names = [e.name for e in LIBRARY]
+    return names
 
 
 def _warm_up_imports() -> None:
@@ -135,14 +159,10 @@ class MainWindow(QMainWindow):
         self._pending_after_open: Callable[[Session], None] | None = None
 
         self.view = PatternView()
-        self.notice = NoticeBar()
-        central = QWidget()
-        lay = QVBoxLayout(central)
-        lay.setContentsMargins(0, 0, 0, 0)
-        lay.setSpacing(0)
-        lay.addWidget(self.notice)
-        lay.addWidget(self.view, 1)
-        self.setCentralWidget(central)
+        self.setCentralWidget(self.view)
+        # the notice bar floats over the top of the view, so a message never moves the image
+        self.notice = NoticeBar(self.view)
+        self.notice.attach_to(self.view)
         self.tools = {cls.name: cls(self) for cls in TOOL_CLASSES}
         self.tool = None
 
@@ -204,8 +224,7 @@ class MainWindow(QMainWindow):
                                     "(PNG, SVG) and a PDF report")
         self.act_quit = self._act("&Quit", self.close, shortcut=SK.Quit)
         self.act_undo = self._act("&Undo", self.undo, icon_name="undo", shortcut=SK.Undo)
-        self.act_redo = self._act("&Redo", self.redo, icon_name="redo",
-                                  shortcut=[QKeySequence(SK.Redo), QKeySequence("Ctrl+Shift+Z")])
+        self.act_redo = self._act("&Redo", self.redo, icon_name="redo", shortcut=_redo_keys())
         prefs_keys = QKeySequence.keyBindings(SK.Preferences) or [QKeySequence("Ctrl+,")]
         self.act_prefs = self._act("&Preferences…", self.preferences, shortcut=list(prefs_keys))
         self.act_fit = self._act("&Fit to window", self.view.fit, icon_name="fit", shortcut="Ctrl+0")
@@ -216,7 +235,8 @@ class MainWindow(QMainWindow):
         self.act_find_spots = self._act("&Find spots", self.find_spots, icon_name="find-spots", shortcut="F5",
                                         tip="Find and refine the spots automatically")
         self.act_search = self._act("&Search zone axes", self.search, icon_name="search", shortcut="F6",
-                                    tip="Rank the zone axes of the ticked phases that explain the spots")
+                                    tip="Rank the zone axes of the ticked phases (or the whole library when none is "
+                                    "ticked) that explain the spots")
         self.act_calibrate = self._act("&Calibrate from rings", self.calibrate, icon_name="calibrate", shortcut="F7",
                                        tip="Fit the rings of a standard and find the camera constant")
         self.act_identify = self._act("&Identify phases from rings", self.identify_phases, shortcut="F8",
@@ -379,6 +399,7 @@ class MainWindow(QMainWindow):
         self.docks["search"].raise_()
         self._dock("measurements", "Measurements", self.measurements_panel, Qt.DockWidgetArea.BottomDockWidgetArea,
                    scroll=False)
+        guard_wheel(self)
         self.display_panel.display_changed.connect(self._display_changed)
         self.display_panel.layer_toggled.connect(self.set_layer_visible)
         self.measurements_panel.spot_selected.connect(self._table_selected_spot)
@@ -466,9 +487,13 @@ class MainWindow(QMainWindow):
         if self._unsubscribe is not None:
             self._unsubscribe()
             self._unsubscribe = None
+        if self.session is not None and session is not self.session:
+            # the replaced session was saved or discarded: its autosave must not be offered after a crash
+            remove_autosave()
         self.session = session
         self.selected_spot = None
         self._autosaved_revision = -1
+        self.notice.dismiss()  # messages about the previous file
         self.tools["ruler"].clear()
         self.measurements_panel.show_ruler(None)
         if session is not None:
@@ -788,7 +813,9 @@ class MainWindow(QMainWindow):
         self._open_image(image, _render_screen(image.data, self.display), then=then)
 
     def _session_settings_for(self, image):
-        prefs = self.prefs
+        """The new pattern's settings: those of the pattern open now (kept from one to the next), else the
+        preferences; the image's own voltage and pixel size win."""
+        prefs = self.session.settings if self.session is not None else self.prefs
         if getattr(image, "voltage_kv", None):
             prefs = prefs.replace(voltage_kv=image.voltage_kv)
         if getattr(image, "pixel_size_um", None):
@@ -796,7 +823,9 @@ class MainWindow(QMainWindow):
         return prefs
 
     def _open_image(self, image, screen, *, then=None) -> None:
+        previous = self.session
         session = Session(image, settings=self._session_settings_for(image))
+        keep_phases = list(previous.phases) if previous is not None else []
         self.set_session(session)
         self._show_image(screen)
         self._display_done_key = self.display.curve_key()
@@ -805,9 +834,9 @@ class MainWindow(QMainWindow):
             app_prefs.add_recent_file(image.source_path)
         self.show_status(f"Opened {image.source_path or 'pattern'}: {image.shape[1]}×{image.shape[0]} px, "
                          f"{image.dtype}")
-        self._start_auto_mask(session, then=then)
+        self._start_auto_mask(session, then=then, keep_phases=keep_phases)
 
-    def _start_auto_mask(self, session: Session, *, then=None) -> None:
+    def _start_auto_mask(self, session: Session, *, then=None, keep_phases=()) -> None:
         data = session.image.data
         sat = session.image.saturation_value
 
@@ -825,6 +854,10 @@ class MainWindow(QMainWindow):
                 return
             self.view.mask_layer.adopt_buffer(screen_buffer)
             session.replace_initial_mask(mask)
+            if keep_phases and not session.is_modified and not session.phases:
+                # the phases ticked for the previous pattern, as part of the starting state
+                session.set_phases(list(keep_phases), label="Keep the phases of the previous pattern")
+                session.mark_saved()
             n = int(np.count_nonzero(mask))
             if n:
                 self.show_status(f"Automatic mask: {n} pixels excluded (saturated or under the beam stop).")
@@ -960,10 +993,15 @@ class MainWindow(QMainWindow):
                         "(saedkit.report.write_report_bundle is missing).", "warning")
             return
         src = Path(s.image.source_path) if s.image.source_path else Path.home() / "pattern"
-        folder = QFileDialog.getExistingDirectory(self, "Export the report into a folder", str(src.parent))
-        if not folder:
+        default = str(src.parent / f"{src.stem}_report")
+        chosen, _ = QFileDialog.getSaveFileName(self, "Export the report into a folder (made when missing)",
+                                                default, "Report folder (*)")
+        if not chosen:
             return
-        out = Path(folder) / f"{src.stem}_report"
+        out = Path(chosen)
+        if out.exists() and not out.is_dir():
+            raise InputError(f"{out}: exists and is not a folder; choose a folder name for the report")
+        out.mkdir(parents=True, exist_ok=True)
         analysis = s.to_analysis()
 
         def work(progress, should_stop):
@@ -1124,7 +1162,9 @@ class MainWindow(QMainWindow):
                 s.set_spots(spots, keep_manual=True)
                 if c is not None and s.centre is None:
                     s.set_centre(c)
-            self.show_status(f"Found {len(spots)} spots.")
+            kept = sum(1 for o in s.spot_origins if o == "manual")
+            self.show_status(f"Found {len(spots)} spots" + (f"; kept the {kept} placed by hand (Undo brings back "
+                                                              "the spots as they were)." if kept else "."))
             if not spots:
                 self.notify(f"No spots above S/N {min_snr:g} were found. Lower the smallest S/N or add "
                             "spots by hand with the Spot tool.", "warning")
@@ -1141,11 +1181,9 @@ class MainWindow(QMainWindow):
         if len(s.spots) < 2:
             raise InputError("the search needs at least two spots besides the central beam: "
                              "find spots (F5) or add them with the Spot tool")
-        if not s.phases:
-            raise InputError("tick at least one phase in the Phases panel before searching")
         state = s.state
         st = s.settings
-        names = list(s.phases)
+        names = _phases_to_search(s)
         xy = s.spots_xy
         sig = np.array([math.hypot(sp.sigma_x, sp.sigma_y) / math.sqrt(2) for sp in s.spots])
         sig = np.where(np.isfinite(sig) & (sig > 0), sig, 1.0)
@@ -1195,7 +1233,7 @@ class MainWindow(QMainWindow):
                     s.set_centre(centre)
                 s.set_match(match, current=same)
             if not match.candidates:
-                self.notify("No zone axis of the ticked phases explains these spots within the tolerances. "
+                self.notify("No zone axis of the phases searched explains these spots within the tolerances. "
                             "Check the centre and the spots, widen the tolerances or tick more phases.", "warning")
             else:
                 b = match.candidates[0]
@@ -1204,7 +1242,9 @@ class MainWindow(QMainWindow):
 
                 self.notify(f"Best candidate: {b.phase} {format_indices(zone, brackets='[]')}, score {b.score:.3f}, "
                             f"{b.n_explained} of {b.n_spots} spots explained ({len(match.candidates)} "
-                            f"candidate{'s' if len(match.candidates) != 1 else ''})."
+                            f"candidate{'s' if len(match.candidates) != 1 else ''}"
+                            + ("" if s.phases else f"; none ticked: all {len(names)} phases of the library")
+                            + ")."
                             + (" Choose another in the Zone-axis search panel to compare its grid."
                                if len(match.candidates) > 1 else ""), "success")
             if not same:
@@ -1262,11 +1302,7 @@ class MainWindow(QMainWindow):
                         "saved calibration) or type a known K in the Camera constant panel.", "warning",
                         actions=[("Camera constant panel", lambda: self.docks["calibration"].raise_())])
             return
-        names = list(s.phases)
-        if not names:
-            from saedkit.core.crystallography.library import LIBRARY
-
-            names = [e.name for e in LIBRARY]
+        names = _phases_to_search(s)
         tol = self.ring_phases_panel.tolerance_pct()
         mixtures = self.ring_phases_panel.use_mixtures()
         data, mask = s.image.data, s.mask
@@ -1426,7 +1462,8 @@ class MainWindow(QMainWindow):
             if not film:
                 s.set_phases(list(getattr(files, "grain_phases", ("Ni", "Fe", "Cu", "Al", "Si"))))
         if film:
-            self.notify("The demo gold film: press Calibrate (F7) to fit its rings against Au.", "info")
+            self.notify("The demo gold film: press Calibrate from rings (F7), or Fit rings in the Camera "
+                        "constant panel, to fit its rings against Au.", "info")
             return
         name = getattr(files, "calibration_name", None)
         if name:
