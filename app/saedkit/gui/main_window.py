@@ -261,6 +261,13 @@ class MainWindow(QMainWindow):
             self.tool_group.addAction(a)
             self.tool_actions[cls.name] = a
             self.addAction(a)
+        self.act_fitted_grid = self._act("Candidate grid with its &fitted K", lambda on: self.refresh_overlays(),
+                                         checkable=True, tip="Draw the chosen candidate's grid with the camera "
+                                         "constant its fit found, not the calibration's (calibrated patterns)")
+        self.act_next_candidate = self._act("&Next candidate", lambda: self.step_candidate(+1), shortcut="]",
+                                            tip="Show the next zone-axis candidate's grid (])")
+        self.act_prev_candidate = self._act("&Previous candidate", lambda: self.step_candidate(-1), shortcut="[",
+                                            tip="Show the previous zone-axis candidate's grid ([)")
         self.layer_actions: dict[str, QAction] = {}
         for name, text in LAYER_NAMES.items():
             a = QAction(text, self)
@@ -294,6 +301,8 @@ class MainWindow(QMainWindow):
         ov = m.addMenu("&Overlays")
         for a in self.layer_actions.values():
             ov.addAction(a)
+        ov.addSeparator()
+        ov.addAction(self.act_fitted_grid)
         panels = m.addMenu("&Panels")
         for d in self.docks.values():
             panels.addAction(d.toggleViewAction())
@@ -302,7 +311,8 @@ class MainWindow(QMainWindow):
             m.addAction(a)
         m = mb.addMenu("&Analyse")
         for a in (self.act_auto_mask, self.act_clear_mask, None, self.act_centre_rings, self.act_centre_friedel,
-                  None, self.act_calibrate, self.act_find_spots, self.act_search, self.act_identify, None,
+                  None, self.act_calibrate, self.act_find_spots, self.act_search, self.act_next_candidate,
+                  self.act_prev_candidate, self.act_identify, None,
                   self.act_cancel):
             m.addSeparator() if a is None else m.addAction(a)
         m = mb.addMenu("&Help")
@@ -579,7 +589,7 @@ class MainWindow(QMainWindow):
         v.spot_layer.set_selected(self.selected_spot)
         if cand is not None:
             pred = cand.predicted
-            pxy = np.array([(p.x, p.y) for p in pred], float).reshape(-1, 2)
+            pxy = self.candidate_grid_xy(s, cand)
             taken = np.zeros(len(pxy), bool)
             if len(pxy) and len(s.spots):
                 sxy = s.spots_xy
@@ -596,6 +606,34 @@ class MainWindow(QMainWindow):
         k, _, _, source = s.camera_constant
         v.camera_constant_px_A = k if source != "none" and math.isfinite(k) else None
         v.viewport().update()
+
+    def candidate_grid_xy(self, s: Session, cand) -> np.ndarray:
+        """Where the candidate's reflections are drawn: at R = K/d with the calibration's K on a calibrated
+        pattern (so a candidate a few % off in d shows it), at the matcher's fitted places otherwise or when
+        View ▸ Candidate grid with its fitted K is on."""
+        pred = cand.predicted
+        pxy = np.array([(p.x, p.y) for p in pred], float).reshape(-1, 2)
+        cal = s.calibration
+        if cal is None or not len(pxy) or self.act_fitted_grid.isChecked():
+            return pxy
+        k_cal = float(cal.camera_constant_px_A)
+        lat = s.match.lattice if s.match is not None else None
+        if lat is not None and np.all(np.isfinite(lat.centre_xy)):
+            c0 = np.asarray(lat.centre_xy, float)
+        elif s.centre is not None:
+            c0 = np.array([s.centre.x, s.centre.y])
+        else:
+            return pxy
+        ell = getattr(cal, "ellipse", None)
+        inv = np.eye(2) if ell is None else np.asarray(ell.inverse_matrix, float)
+        fwd = np.linalg.inv(inv)
+        ideal = (pxy - c0) @ inv.T  # undistorted offsets
+        r = np.hypot(*ideal.T)
+        d = np.array([p.d_A for p in pred], float)
+        ok = (r > 0) & np.isfinite(d) & (d > 0)
+        # camera equation R·d = K (DESIGN.md): the same direction, the radius of the calibration
+        scale = np.where(ok, k_cal / np.where(ok, d, 1.0) / np.where(ok, r, 1.0), 1.0)
+        return c0 + (ideal * scale[:, None]) @ fwd.T
 
     def _refresh_rings(self) -> None:
         s = self.session
@@ -1022,6 +1060,22 @@ class MainWindow(QMainWindow):
     def redo(self) -> None:
         if self.session is not None and not self.session.redo():
             self.show_status("Nothing to redo.")
+
+    def step_candidate(self, step: int) -> None:
+        """Choose the next (+1) or previous (−1) zone-axis candidate, wrapping around the list."""
+        s = self._require()
+        if s.match is None or not s.match.candidates:
+            self.show_status("No zone-axis candidates yet: search first (F6).")
+            return
+        n = len(s.match.candidates)
+        now = s.chosen_candidate if s.chosen_candidate is not None else 0
+        s.choose_candidate((now + int(step)) % n)
+        c = s.candidate
+        from saedkit.core.crystallography.crystal import format_indices
+
+        zone = c.zone_four_index if c.zone_four_index is not None else c.zone
+        self.show_status(f"Candidate {s.chosen_candidate + 1} of {n}: {c.phase} {format_indices(zone, brackets='[]')}, "
+                         f"score {c.score:.3f}")
 
     def _require(self) -> Session:
         if self.session is None:
