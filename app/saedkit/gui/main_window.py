@@ -31,6 +31,7 @@ from PySide6.QtWidgets import (
     QMessageBox,
     QProgressBar,
     QScrollArea,
+    QTabWidget,
     QToolBar,
     QToolButton,
     QVBoxLayout,
@@ -62,6 +63,7 @@ IMAGE_FILTER = ("Diffraction patterns (*.tif *.tiff *.png *.jpg *.jpeg *.mrc *.m
 SESSION_FILTER = "saedkit sessions (*.saedkit.json);;All files (*)"
 _AUTOSAVE_MS = 30_000
 _PREVIEW_SIDE = 1024
+_LAYOUT_VERSION = 2  # the dock layout's version: a layout saved by an older arrangement is not restored
 
 
 def _render_screen(data: np.ndarray, settings: DisplaySettings, *, mask=None, step: int = 1) -> tuple:
@@ -264,6 +266,11 @@ class MainWindow(QMainWindow):
         self.act_fitted_grid = self._act("Candidate grid with its &fitted K", lambda on: self.refresh_overlays(),
                                          checkable=True, tip="Draw the chosen candidate's grid with the camera "
                                          "constant its fit found, not the calibration's (calibrated patterns)")
+        self.act_pattern_only = self._act("&Pattern only", self.toggle_pattern_only, shortcut="F11", checkable=True,
+                                          tip="Hide the panels and the tool options to give the whole window to the "
+                                          "pattern (F11 again brings them back)")
+        self.act_table = self._act("Measurement &table", self.show_table, shortcut="Ctrl+T", checkable=True,
+                                   tip="Show or hide the measurement table (Ctrl+T)")
         self.act_next_candidate = self._act("&Next candidate", lambda: self.step_candidate(+1), shortcut="]",
                                             tip="Show the next zone-axis candidate's grid (])")
         self.act_prev_candidate = self._act("&Previous candidate", lambda: self.step_candidate(-1), shortcut="[",
@@ -303,9 +310,13 @@ class MainWindow(QMainWindow):
             ov.addAction(a)
         ov.addSeparator()
         ov.addAction(self.act_fitted_grid)
+        m.addSeparator()
+        m.addAction(self.act_table)
+        m.addAction(self.act_pattern_only)
         panels = m.addMenu("&Panels")
         for d in self.docks.values():
             panels.addAction(d.toggleViewAction())
+        self.docks["measurements"].visibilityChanged.connect(lambda _v: self._sync_table_action())
         m = mb.addMenu("&Tools")
         for a in self.tool_actions.values():
             m.addAction(a)
@@ -395,20 +406,25 @@ class MainWindow(QMainWindow):
         self.search_panel = SearchPanel(self)
         self.measurements_panel = MeasurementsPanel(self)
         self.ring_phases_panel = RingPhasesPanel(self)
+        # the steps are tabs of one column on the right, the table is shown on demand: the pattern gets the room
         right = Qt.DockWidgetArea.RightDockWidgetArea
-        left = Qt.DockWidgetArea.LeftDockWidgetArea
-        self._dock("calibration", "Camera constant", self.calibration_panel, left)
-        self._dock("display", "Display", self.display_panel, left)
-        self.tabifyDockWidget(self.docks["calibration"], self.docks["display"])
+        self.setDockOptions(QMainWindow.DockOption.AnimatedDocks | QMainWindow.DockOption.AllowTabbedDocks
+                            | QMainWindow.DockOption.AllowNestedDocks)
+        self.setTabPosition(Qt.DockWidgetArea.AllDockWidgetAreas, QTabWidget.TabPosition.North)
+        self._dock("calibration", "Camera constant", self.calibration_panel, right)
+        for key, title, panel in (("search", "Zone-axis search", self.search_panel),
+                                  ("phases", "Phases", self.phases_panel),
+                                  ("ring_phases", "Phases from rings", self.ring_phases_panel),
+                                  ("display", "Display", self.display_panel)):
+            self._dock(key, title, panel, right)
+            self.tabifyDockWidget(self.docks["calibration"], self.docks[key])
         self.docks["calibration"].raise_()
-        self._dock("search", "Zone-axis search", self.search_panel, right)
-        self._dock("phases", "Phases", self.phases_panel, right)
-        self.tabifyDockWidget(self.docks["search"], self.docks["phases"])
-        self._dock("ring_phases", "Phases from rings", self.ring_phases_panel, right)
-        self.tabifyDockWidget(self.docks["phases"], self.docks["ring_phases"])
-        self.docks["search"].raise_()
         self._dock("measurements", "Measurements", self.measurements_panel, Qt.DockWidgetArea.BottomDockWidgetArea,
                    scroll=False)
+        self.docks["measurements"].hide()
+        self._table_hidden_by_user = False
+        self.docks["measurements"].toggleViewAction().triggered.connect(
+            lambda on: setattr(self, "_table_hidden_by_user", not on))
         guard_wheel(self)
         self.display_panel.display_changed.connect(self._display_changed)
         self.display_panel.layer_toggled.connect(self.set_layer_visible)
@@ -1061,6 +1077,36 @@ class MainWindow(QMainWindow):
         if self.session is not None and not self.session.redo():
             self.show_status("Nothing to redo.")
 
+    def _sync_table_action(self) -> None:
+        self.act_table.blockSignals(True)
+        self.act_table.setChecked(not self.docks["measurements"].isHidden())
+        self.act_table.blockSignals(False)
+
+    def show_table(self, on: bool = True) -> None:
+        """Show (or hide) the measurement table."""
+        d = self.docks["measurements"]
+        if on and self.act_pattern_only.isChecked():
+            self.act_pattern_only.setChecked(False)
+        d.setVisible(bool(on))
+        self._table_hidden_by_user = not on
+        if self.act_table.isChecked() != bool(on):
+            self.act_table.setChecked(bool(on))
+
+    def toggle_pattern_only(self, on: bool) -> None:
+        """Give the whole window to the pattern (hide every panel and the tool options), or bring them back."""
+        if on:
+            self._before_pattern_only = [d for d in self.docks.values() if not d.isHidden()]
+            self._before_pattern_only += [self.tool_options] if not self.tool_options.isHidden() else []
+            for w in self._before_pattern_only:
+                w.hide()
+            self.show_status("Pattern only: F11 brings the panels back.")
+        else:
+            for w in getattr(self, "_before_pattern_only", None) or [self.docks["calibration"], self.tool_options]:
+                w.show()
+            self._before_pattern_only = []
+        if self.act_pattern_only.isChecked() != bool(on):
+            self.act_pattern_only.setChecked(bool(on))
+
     def step_candidate(self, step: int) -> None:
         """Choose the next (+1) or previous (−1) zone-axis candidate, wrapping around the list."""
         s = self._require()
@@ -1216,6 +1262,9 @@ class MainWindow(QMainWindow):
                 s.set_spots(spots, keep_manual=True)
                 if c is not None and s.centre is None:
                     s.set_centre(c)
+            if s.spots and self.docks["measurements"].isHidden() and not self._table_hidden_by_user \
+                    and not self.act_pattern_only.isChecked():
+                self.docks["measurements"].show()
             kept = sum(1 for o in s.spot_origins if o == "manual")
             self.show_status(f"Found {len(spots)} spots" + (f"; kept the {kept} placed by hand (Undo brings back "
                                                               "the spots as they were)." if kept else "."))
@@ -1608,15 +1657,15 @@ class MainWindow(QMainWindow):
         if isinstance(geo, QByteArray):
             self.restoreGeometry(geo)
         if isinstance(state, QByteArray):
-            self._state_restored = self.restoreState(state)
+            self._state_restored = self.restoreState(state, _LAYOUT_VERSION)
 
     def showEvent(self, event) -> None:  # noqa: N802
         super().showEvent(event)
         if not getattr(self, "_docks_sized", False):
             self._docks_sized = True
             if not self._state_restored:
-                self.resizeDocks([self.docks["calibration"], self.docks["search"]], [370, 400],
-                                 Qt.Orientation.Horizontal)
+                side = max(340, min(440, int(0.27 * self.width())))
+                self.resizeDocks([self.docks["calibration"]], [side], Qt.Orientation.Horizontal)
                 self.resizeDocks([self.docks["measurements"]], [220], Qt.Orientation.Vertical)
 
     def dragEnterEvent(self, event) -> None:  # noqa: N802
@@ -1634,7 +1683,7 @@ class MainWindow(QMainWindow):
             return
         st = app_prefs.app_settings()
         st.setValue("window/geometry", self.saveGeometry())
-        st.setValue("window/state", self.saveState())
+        st.setValue("window/state", self.saveState(_LAYOUT_VERSION))
         st.sync()
         self.runner.cancel()
         self.runner.wait(5000)
