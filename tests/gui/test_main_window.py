@@ -314,11 +314,13 @@ def test_export_report_writes_the_bundle(window, open_pattern, si_file, tmp_path
     s.set_centre(manual_centre(*truth.centre_xy, sigma_px=0.3))
     window.use_camera_constant(K_SI, 0.5)
     window.find_spots()
-    monkeypatch.setattr(QFileDialog, "getExistingDirectory", staticmethod(lambda *a, **k: str(tmp_path)))
+    # the report folder is named in the dialog and made when missing (with its missing parents)
+    out = tmp_path / "not yet" / "si_011_report"
+    monkeypatch.setattr(QFileDialog, "getSaveFileName", staticmethod(lambda *a, **k: (str(out), "")))
     window.act_export.trigger()
     level, text = window.notices[-1]
     assert level == "success", text
-    written = {p.suffix for p in (tmp_path / "si_011_report").iterdir()}
+    written = {p.suffix for p in out.iterdir()}
     assert {".csv", ".json", ".png", ".pdf"} <= written
 
 

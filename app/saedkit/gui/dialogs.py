@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from PySide6.QtCore import Qt, QTimer, Signal
+from PySide6.QtCore import QEvent, QObject, Qt, QTimer, Signal
 from PySide6.QtWidgets import (
     QCheckBox,
     QDialog,
@@ -58,6 +58,7 @@ class NoticeBar(QFrame):
         self.close_button.setFlat(True)
         self.close_button.setFixedWidth(28)
         self.close_button.setToolTip("Dismiss")
+        self.close_button.setObjectName("noticeClose")
         lay.addWidget(self.symbol)
         lay.addWidget(self.text, 1)
         lay.addLayout(self.buttons)
@@ -73,9 +74,14 @@ class NoticeBar(QFrame):
         """Show ``text``; ``actions`` is a sequence of (button text, callable)."""
         back, fore, sym = _LEVEL_STYLE.get(level, _LEVEL_STYLE["info"])
         self.level = level
+        # action buttons: dark text on the light colour of the level, so they read on every style
         self.setStyleSheet(f"#noticeBar {{ background: {back}; border-bottom: 1px solid rgba(0,0,0,80); }}"
                            f"#noticeBar QLabel {{ color: {fore}; }}"
-                           f"#noticeBar QPushButton {{ color: {fore}; }}")
+                           f"#noticeBar QPushButton {{ color: {back}; background: {fore}; border: 1px solid {fore};"
+                           f" border-radius: 3px; padding: 3px 12px; font-weight: bold; }}"
+                           f"#noticeBar QPushButton:hover {{ background: #ffffff; }}"
+                           f"#noticeBar QPushButton#noticeClose {{ color: {fore}; background: transparent;"
+                           f" border: none; padding: 0; }}")
         self.symbol.setText(sym)
         self.text.setText(text)
         while self.buttons.count():
@@ -87,9 +93,31 @@ class NoticeBar(QFrame):
             b.clicked.connect(lambda _=False, f=fn: (self.dismiss(), f()))
             self.buttons.addWidget(b)
         self.show()
+        self._place()
+        self.raise_()
         self._timer.stop()
         if timeout_ms:
             self._timer.start(timeout_ms)
+
+    def attach_to(self, host: QWidget) -> None:
+        """Float over the top edge of ``host`` (a child of it, resized with it): the host's content never moves."""
+        self._host = host
+        host.installEventFilter(self)
+        self._place()
+
+    def _place(self) -> None:
+        host = getattr(self, "_host", None)
+        if host is None:
+            return
+        width = host.width()
+        lay = self.layout()
+        height = lay.heightForWidth(width) if lay.hasHeightForWidth() else -1
+        self.setGeometry(0, 0, width, max(height, self.sizeHint().height(), 24))
+
+    def eventFilter(self, obj: QObject, event: QEvent) -> bool:  # noqa: N802
+        if obj is getattr(self, "_host", None) and event.type() == QEvent.Type.Resize:
+            self._place()
+        return False
 
     def dismiss(self) -> None:
         self._timer.stop()

@@ -31,6 +31,7 @@ from PySide6.QtWidgets import (
     QMessageBox,
     QProgressBar,
     QScrollArea,
+    QTabWidget,
     QToolBar,
     QToolButton,
     QVBoxLayout,
@@ -52,6 +53,7 @@ from saedkit.gui.icons import icon
 from saedkit.gui.panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, RingPhasesPanel, SearchPanel
 from saedkit.gui.tools import TOOL_CLASSES, describe_pair
 from saedkit.gui.view import LAYER_NAMES, PatternView, calculate_argb_image
+from saedkit.gui.widgets import guard_wheel
 from saedkit.gui.workers import TaskRunner
 
 __all__ = ["MainWindow", "IMAGE_FILTER", "SESSION_FILTER"]
@@ -61,6 +63,7 @@ IMAGE_FILTER = ("Diffraction patterns (*.tif *.tiff *.png *.jpg *.jpeg *.mrc *.m
 SESSION_FILTER = "saedkit sessions (*.saedkit.json);;All files (*)"
 _AUTOSAVE_MS = 30_000
 _PREVIEW_SIDE = 1024
+_LAYOUT_VERSION = 2  # the dock layout's version: a layout saved by an older arrangement is not restored
 
 
 def _render_screen(data: np.ndarray, settings: DisplaySettings, *, mask=None, step: int = 1) -> tuple:
@@ -77,6 +80,29 @@ def _shown_hkl(hkl, candidate) -> tuple:
 
         return to_four_index_plane(hkl)
     return tuple(int(v) for v in hkl)
+
+
+def _redo_keys() -> list[QKeySequence]:
+    """Ctrl+Shift+Z and Ctrl+Y (and the platform's Redo), each once: a key bound twice is 'ambiguous'."""
+    keys: list[QKeySequence] = []
+    seen: set[str] = set()
+    for k in [*QKeySequence.keyBindings(QKeySequence.StandardKey.Redo), QKeySequence("Ctrl+Shift+Z"),
+              QKeySequence("Ctrl+Y")]:
+        text = k.toString(QKeySequence.SequenceFormat.PortableText)
+        if text and text not in seen:
+            seen.add(text)
+            keys.append(k)
+    return keys
+
+
+def _phases_to_search(session: Session) -> list[str]:
+    """The ticked phases; with none ticked, the whole built-in library (the same for spots and rings)."""
+    names = list(session.phases)
+    if not names:
+        from saedkit.core.crystallography.library import LIBRARY
+
+        names = [e.name for e in LIBRARY]
+    return names
 
 
 def _warm_up_imports() -> None:
@@ -135,14 +161,10 @@ class MainWindow(QMainWindow):
         self._pending_after_open: Callable[[Session], None] | None = None
 
         self.view = PatternView()
-        self.notice = NoticeBar()
-        central = QWidget()
-        lay = QVBoxLayout(central)
-        lay.setContentsMargins(0, 0, 0, 0)
-        lay.setSpacing(0)
-        lay.addWidget(self.notice)
-        lay.addWidget(self.view, 1)
-        self.setCentralWidget(central)
+        self.setCentralWidget(self.view)
+        # the notice bar floats over the top of the view, so a message never moves the image
+        self.notice = NoticeBar(self.view)
+        self.notice.attach_to(self.view)
         self.tools = {cls.name: cls(self) for cls in TOOL_CLASSES}
         self.tool = None
 
@@ -204,8 +226,7 @@ class MainWindow(QMainWindow):
                                     "(PNG, SVG) and a PDF report")
         self.act_quit = self._act("&Quit", self.close, shortcut=SK.Quit)
         self.act_undo = self._act("&Undo", self.undo, icon_name="undo", shortcut=SK.Undo)
-        self.act_redo = self._act("&Redo", self.redo, icon_name="redo",
-                                  shortcut=[QKeySequence(SK.Redo), QKeySequence("Ctrl+Shift+Z")])
+        self.act_redo = self._act("&Redo", self.redo, icon_name="redo", shortcut=_redo_keys())
         prefs_keys = QKeySequence.keyBindings(SK.Preferences) or [QKeySequence("Ctrl+,")]
         self.act_prefs = self._act("&Preferences…", self.preferences, shortcut=list(prefs_keys))
         self.act_fit = self._act("&Fit to window", self.view.fit, icon_name="fit", shortcut="Ctrl+0")
@@ -216,7 +237,8 @@ class MainWindow(QMainWindow):
         self.act_find_spots = self._act("&Find spots", self.find_spots, icon_name="find-spots", shortcut="F5",
                                         tip="Find and refine the spots automatically")
         self.act_search = self._act("&Search zone axes", self.search, icon_name="search", shortcut="F6",
-                                    tip="Rank the zone axes of the ticked phases that explain the spots")
+                                    tip="Rank the zone axes of the ticked phases (or the whole library when none is "
+                                    "ticked) that explain the spots")
         self.act_calibrate = self._act("&Calibrate from rings", self.calibrate, icon_name="calibrate", shortcut="F7",
                                        tip="Fit the rings of a standard and find the camera constant")
         self.act_identify = self._act("&Identify phases from rings", self.identify_phases, shortcut="F8",
@@ -241,6 +263,18 @@ class MainWindow(QMainWindow):
             self.tool_group.addAction(a)
             self.tool_actions[cls.name] = a
             self.addAction(a)
+        self.act_fitted_grid = self._act("Candidate grid with its &fitted K", lambda on: self.refresh_overlays(),
+                                         checkable=True, tip="Draw the chosen candidate's grid with the camera "
+                                         "constant its fit found, not the calibration's (calibrated patterns)")
+        self.act_pattern_only = self._act("&Pattern only", self.toggle_pattern_only, shortcut="F11", checkable=True,
+                                          tip="Hide the panels and the tool options to give the whole window to the "
+                                          "pattern (F11 again brings them back)")
+        self.act_table = self._act("Measurement &table", self.show_table, shortcut="Ctrl+T", checkable=True,
+                                   tip="Show or hide the measurement table (Ctrl+T)")
+        self.act_next_candidate = self._act("&Next candidate", lambda: self.step_candidate(+1), shortcut="]",
+                                            tip="Show the next zone-axis candidate's grid (])")
+        self.act_prev_candidate = self._act("&Previous candidate", lambda: self.step_candidate(-1), shortcut="[",
+                                            tip="Show the previous zone-axis candidate's grid ([)")
         self.layer_actions: dict[str, QAction] = {}
         for name, text in LAYER_NAMES.items():
             a = QAction(text, self)
@@ -274,15 +308,22 @@ class MainWindow(QMainWindow):
         ov = m.addMenu("&Overlays")
         for a in self.layer_actions.values():
             ov.addAction(a)
+        ov.addSeparator()
+        ov.addAction(self.act_fitted_grid)
+        m.addSeparator()
+        m.addAction(self.act_table)
+        m.addAction(self.act_pattern_only)
         panels = m.addMenu("&Panels")
         for d in self.docks.values():
             panels.addAction(d.toggleViewAction())
+        self.docks["measurements"].visibilityChanged.connect(lambda _v: self._sync_table_action())
         m = mb.addMenu("&Tools")
         for a in self.tool_actions.values():
             m.addAction(a)
         m = mb.addMenu("&Analyse")
         for a in (self.act_auto_mask, self.act_clear_mask, None, self.act_centre_rings, self.act_centre_friedel,
-                  None, self.act_calibrate, self.act_find_spots, self.act_search, self.act_identify, None,
+                  None, self.act_calibrate, self.act_find_spots, self.act_search, self.act_next_candidate,
+                  self.act_prev_candidate, self.act_identify, None,
                   self.act_cancel):
             m.addSeparator() if a is None else m.addAction(a)
         m = mb.addMenu("&Help")
@@ -365,20 +406,26 @@ class MainWindow(QMainWindow):
         self.search_panel = SearchPanel(self)
         self.measurements_panel = MeasurementsPanel(self)
         self.ring_phases_panel = RingPhasesPanel(self)
+        # the steps are tabs of one column on the right, the table is shown on demand: the pattern gets the room
         right = Qt.DockWidgetArea.RightDockWidgetArea
-        left = Qt.DockWidgetArea.LeftDockWidgetArea
-        self._dock("calibration", "Camera constant", self.calibration_panel, left)
-        self._dock("display", "Display", self.display_panel, left)
-        self.tabifyDockWidget(self.docks["calibration"], self.docks["display"])
+        self.setDockOptions(QMainWindow.DockOption.AnimatedDocks | QMainWindow.DockOption.AllowTabbedDocks
+                            | QMainWindow.DockOption.AllowNestedDocks)
+        self.setTabPosition(Qt.DockWidgetArea.AllDockWidgetAreas, QTabWidget.TabPosition.North)
+        self._dock("calibration", "Camera constant", self.calibration_panel, right)
+        for key, title, panel in (("search", "Zone-axis search", self.search_panel),
+                                  ("phases", "Phases", self.phases_panel),
+                                  ("ring_phases", "Phases from rings", self.ring_phases_panel),
+                                  ("display", "Display", self.display_panel)):
+            self._dock(key, title, panel, right)
+            self.tabifyDockWidget(self.docks["calibration"], self.docks[key])
         self.docks["calibration"].raise_()
-        self._dock("search", "Zone-axis search", self.search_panel, right)
-        self._dock("phases", "Phases", self.phases_panel, right)
-        self.tabifyDockWidget(self.docks["search"], self.docks["phases"])
-        self._dock("ring_phases", "Phases from rings", self.ring_phases_panel, right)
-        self.tabifyDockWidget(self.docks["phases"], self.docks["ring_phases"])
-        self.docks["search"].raise_()
         self._dock("measurements", "Measurements", self.measurements_panel, Qt.DockWidgetArea.BottomDockWidgetArea,
                    scroll=False)
+        self.docks["measurements"].hide()
+        self._table_hidden_by_user = False
+        self.docks["measurements"].toggleViewAction().triggered.connect(
+            lambda on: setattr(self, "_table_hidden_by_user", not on))
+        guard_wheel(self)
         self.display_panel.display_changed.connect(self._display_changed)
         self.display_panel.layer_toggled.connect(self.set_layer_visible)
         self.measurements_panel.spot_selected.connect(self._table_selected_spot)
@@ -466,9 +513,13 @@ class MainWindow(QMainWindow):
         if self._unsubscribe is not None:
             self._unsubscribe()
             self._unsubscribe = None
+        if self.session is not None and session is not self.session:
+            # the replaced session was saved or discarded: its autosave must not be offered after a crash
+            remove_autosave()
         self.session = session
         self.selected_spot = None
         self._autosaved_revision = -1
+        self.notice.dismiss()  # messages about the previous file
         self.tools["ruler"].clear()
         self.measurements_panel.show_ruler(None)
         if session is not None:
@@ -554,7 +605,7 @@ class MainWindow(QMainWindow):
         v.spot_layer.set_selected(self.selected_spot)
         if cand is not None:
             pred = cand.predicted
-            pxy = np.array([(p.x, p.y) for p in pred], float).reshape(-1, 2)
+            pxy = self.candidate_grid_xy(s, cand)
             taken = np.zeros(len(pxy), bool)
             if len(pxy) and len(s.spots):
                 sxy = s.spots_xy
@@ -571,6 +622,34 @@ class MainWindow(QMainWindow):
         k, _, _, source = s.camera_constant
         v.camera_constant_px_A = k if source != "none" and math.isfinite(k) else None
         v.viewport().update()
+
+    def candidate_grid_xy(self, s: Session, cand) -> np.ndarray:
+        """Where the candidate's reflections are drawn: at R = K/d with the calibration's K on a calibrated
+        pattern (so a candidate a few % off in d shows it), at the matcher's fitted places otherwise or when
+        View ▸ Candidate grid with its fitted K is on."""
+        pred = cand.predicted
+        pxy = np.array([(p.x, p.y) for p in pred], float).reshape(-1, 2)
+        cal = s.calibration
+        if cal is None or not len(pxy) or self.act_fitted_grid.isChecked():
+            return pxy
+        k_cal = float(cal.camera_constant_px_A)
+        lat = s.match.lattice if s.match is not None else None
+        if lat is not None and np.all(np.isfinite(lat.centre_xy)):
+            c0 = np.asarray(lat.centre_xy, float)
+        elif s.centre is not None:
+            c0 = np.array([s.centre.x, s.centre.y])
+        else:
+            return pxy
+        ell = getattr(cal, "ellipse", None)
+        inv = np.eye(2) if ell is None else np.asarray(ell.inverse_matrix, float)
+        fwd = np.linalg.inv(inv)
+        ideal = (pxy - c0) @ inv.T  # undistorted offsets
+        r = np.hypot(*ideal.T)
+        d = np.array([p.d_A for p in pred], float)
+        ok = (r > 0) & np.isfinite(d) & (d > 0)
+        # camera equation R·d = K (DESIGN.md): the same direction, the radius of the calibration
+        scale = np.where(ok, k_cal / np.where(ok, d, 1.0) / np.where(ok, r, 1.0), 1.0)
+        return c0 + (ideal * scale[:, None]) @ fwd.T
 
     def _refresh_rings(self) -> None:
         s = self.session
@@ -788,7 +867,9 @@ class MainWindow(QMainWindow):
         self._open_image(image, _render_screen(image.data, self.display), then=then)
 
     def _session_settings_for(self, image):
-        prefs = self.prefs
+        """The new pattern's settings: those of the pattern open now (kept from one to the next), else the
+        preferences; the image's own voltage and pixel size win."""
+        prefs = self.session.settings if self.session is not None else self.prefs
         if getattr(image, "voltage_kv", None):
             prefs = prefs.replace(voltage_kv=image.voltage_kv)
         if getattr(image, "pixel_size_um", None):
@@ -796,7 +877,9 @@ class MainWindow(QMainWindow):
         return prefs
 
     def _open_image(self, image, screen, *, then=None) -> None:
+        previous = self.session
         session = Session(image, settings=self._session_settings_for(image))
+        keep_phases = list(previous.phases) if previous is not None else []
         self.set_session(session)
         self._show_image(screen)
         self._display_done_key = self.display.curve_key()
@@ -805,9 +888,9 @@ class MainWindow(QMainWindow):
             app_prefs.add_recent_file(image.source_path)
         self.show_status(f"Opened {image.source_path or 'pattern'}: {image.shape[1]}×{image.shape[0]} px, "
                          f"{image.dtype}")
-        self._start_auto_mask(session, then=then)
+        self._start_auto_mask(session, then=then, keep_phases=keep_phases)
 
-    def _start_auto_mask(self, session: Session, *, then=None) -> None:
+    def _start_auto_mask(self, session: Session, *, then=None, keep_phases=()) -> None:
         data = session.image.data
         sat = session.image.saturation_value
 
@@ -825,6 +908,10 @@ class MainWindow(QMainWindow):
                 return
             self.view.mask_layer.adopt_buffer(screen_buffer)
             session.replace_initial_mask(mask)
+            if keep_phases and not session.is_modified and not session.phases:
+                # the phases ticked for the previous pattern, as part of the starting state
+                session.set_phases(list(keep_phases), label="Keep the phases of the previous pattern")
+                session.mark_saved()
             n = int(np.count_nonzero(mask))
             if n:
                 self.show_status(f"Automatic mask: {n} pixels excluded (saturated or under the beam stop).")
@@ -960,10 +1047,15 @@ class MainWindow(QMainWindow):
                         "(saedkit.report.write_report_bundle is missing).", "warning")
             return
         src = Path(s.image.source_path) if s.image.source_path else Path.home() / "pattern"
-        folder = QFileDialog.getExistingDirectory(self, "Export the report into a folder", str(src.parent))
-        if not folder:
+        default = str(src.parent / f"{src.stem}_report")
+        chosen, _ = QFileDialog.getSaveFileName(self, "Export the report into a folder (made when missing)",
+                                                default, "Report folder (*)")
+        if not chosen:
             return
-        out = Path(folder) / f"{src.stem}_report"
+        out = Path(chosen)
+        if out.exists() and not out.is_dir():
+            raise InputError(f"{out}: exists and is not a folder; choose a folder name for the report")
+        out.mkdir(parents=True, exist_ok=True)
         analysis = s.to_analysis()
 
         def work(progress, should_stop):
@@ -984,6 +1076,52 @@ class MainWindow(QMainWindow):
     def redo(self) -> None:
         if self.session is not None and not self.session.redo():
             self.show_status("Nothing to redo.")
+
+    def _sync_table_action(self) -> None:
+        self.act_table.blockSignals(True)
+        self.act_table.setChecked(not self.docks["measurements"].isHidden())
+        self.act_table.blockSignals(False)
+
+    def show_table(self, on: bool = True) -> None:
+        """Show (or hide) the measurement table."""
+        d = self.docks["measurements"]
+        if on and self.act_pattern_only.isChecked():
+            self.act_pattern_only.setChecked(False)
+        d.setVisible(bool(on))
+        self._table_hidden_by_user = not on
+        if self.act_table.isChecked() != bool(on):
+            self.act_table.setChecked(bool(on))
+
+    def toggle_pattern_only(self, on: bool) -> None:
+        """Give the whole window to the pattern (hide every panel and the tool options), or bring them back."""
+        if on:
+            self._before_pattern_only = [d for d in self.docks.values() if not d.isHidden()]
+            self._before_pattern_only += [self.tool_options] if not self.tool_options.isHidden() else []
+            for w in self._before_pattern_only:
+                w.hide()
+            self.show_status("Pattern only: F11 brings the panels back.")
+        else:
+            for w in getattr(self, "_before_pattern_only", None) or [self.docks["calibration"], self.tool_options]:
+                w.show()
+            self._before_pattern_only = []
+        if self.act_pattern_only.isChecked() != bool(on):
+            self.act_pattern_only.setChecked(bool(on))
+
+    def step_candidate(self, step: int) -> None:
+        """Choose the next (+1) or previous (−1) zone-axis candidate, wrapping around the list."""
+        s = self._require()
+        if s.match is None or not s.match.candidates:
+            self.show_status("No zone-axis candidates yet: search first (F6).")
+            return
+        n = len(s.match.candidates)
+        now = s.chosen_candidate if s.chosen_candidate is not None else 0
+        s.choose_candidate((now + int(step)) % n)
+        c = s.candidate
+        from saedkit.core.crystallography.crystal import format_indices
+
+        zone = c.zone_four_index if c.zone_four_index is not None else c.zone
+        self.show_status(f"Candidate {s.chosen_candidate + 1} of {n}: {c.phase} {format_indices(zone, brackets='[]')}, "
+                         f"score {c.score:.3f}")
 
     def _require(self) -> Session:
         if self.session is None:
@@ -1124,7 +1262,12 @@ class MainWindow(QMainWindow):
                 s.set_spots(spots, keep_manual=True)
                 if c is not None and s.centre is None:
                     s.set_centre(c)
-            self.show_status(f"Found {len(spots)} spots.")
+            if s.spots and self.docks["measurements"].isHidden() and not self._table_hidden_by_user \
+                    and not self.act_pattern_only.isChecked():
+                self.docks["measurements"].show()
+            kept = sum(1 for o in s.spot_origins if o == "manual")
+            self.show_status(f"Found {len(spots)} spots" + (f"; kept the {kept} placed by hand (Undo brings back "
+                                                              "the spots as they were)." if kept else "."))
             if not spots:
                 self.notify(f"No spots above S/N {min_snr:g} were found. Lower the smallest S/N or add "
                             "spots by hand with the Spot tool.", "warning")
@@ -1141,11 +1284,9 @@ class MainWindow(QMainWindow):
         if len(s.spots) < 2:
             raise InputError("the search needs at least two spots besides the central beam: "
                              "find spots (F5) or add them with the Spot tool")
-        if not s.phases:
-            raise InputError("tick at least one phase in the Phases panel before searching")
         state = s.state
         st = s.settings
-        names = list(s.phases)
+        names = _phases_to_search(s)
         xy = s.spots_xy
         sig = np.array([math.hypot(sp.sigma_x, sp.sigma_y) / math.sqrt(2) for sp in s.spots])
         sig = np.where(np.isfinite(sig) & (sig > 0), sig, 1.0)
@@ -1195,7 +1336,7 @@ class MainWindow(QMainWindow):
                     s.set_centre(centre)
                 s.set_match(match, current=same)
             if not match.candidates:
-                self.notify("No zone axis of the ticked phases explains these spots within the tolerances. "
+                self.notify("No zone axis of the phases searched explains these spots within the tolerances. "
                             "Check the centre and the spots, widen the tolerances or tick more phases.", "warning")
             else:
                 b = match.candidates[0]
@@ -1204,7 +1345,9 @@ class MainWindow(QMainWindow):
 
                 self.notify(f"Best candidate: {b.phase} {format_indices(zone, brackets='[]')}, score {b.score:.3f}, "
                             f"{b.n_explained} of {b.n_spots} spots explained ({len(match.candidates)} "
-                            f"candidate{'s' if len(match.candidates) != 1 else ''})."
+                            f"candidate{'s' if len(match.candidates) != 1 else ''}"
+                            + ("" if s.phases else f"; none ticked: all {len(names)} phases of the library")
+                            + ")."
                             + (" Choose another in the Zone-axis search panel to compare its grid."
                                if len(match.candidates) > 1 else ""), "success")
             if not same:
@@ -1262,11 +1405,7 @@ class MainWindow(QMainWindow):
                         "saved calibration) or type a known K in the Camera constant panel.", "warning",
                         actions=[("Camera constant panel", lambda: self.docks["calibration"].raise_())])
             return
-        names = list(s.phases)
-        if not names:
-            from saedkit.core.crystallography.library import LIBRARY
-
-            names = [e.name for e in LIBRARY]
+        names = _phases_to_search(s)
         tol = self.ring_phases_panel.tolerance_pct()
         mixtures = self.ring_phases_panel.use_mixtures()
         data, mask = s.image.data, s.mask
@@ -1426,7 +1565,8 @@ class MainWindow(QMainWindow):
             if not film:
                 s.set_phases(list(getattr(files, "grain_phases", ("Ni", "Fe", "Cu", "Al", "Si"))))
         if film:
-            self.notify("The demo gold film: press Calibrate (F7) to fit its rings against Au.", "info")
+            self.notify("The demo gold film: press Calibrate from rings (F7), or Fit rings in the Camera "
+                        "constant panel, to fit its rings against Au.", "info")
             return
         name = getattr(files, "calibration_name", None)
         if name:
@@ -1517,15 +1657,15 @@ class MainWindow(QMainWindow):
         if isinstance(geo, QByteArray):
             self.restoreGeometry(geo)
         if isinstance(state, QByteArray):
-            self._state_restored = self.restoreState(state)
+            self._state_restored = self.restoreState(state, _LAYOUT_VERSION)
 
     def showEvent(self, event) -> None:  # noqa: N802
         super().showEvent(event)
         if not getattr(self, "_docks_sized", False):
             self._docks_sized = True
             if not self._state_restored:
-                self.resizeDocks([self.docks["calibration"], self.docks["search"]], [370, 400],
-                                 Qt.Orientation.Horizontal)
+                side = max(340, min(440, int(0.27 * self.width())))
+                self.resizeDocks([self.docks["calibration"]], [side], Qt.Orientation.Horizontal)
                 self.resizeDocks([self.docks["measurements"]], [220], Qt.Orientation.Vertical)
 
     def dragEnterEvent(self, event) -> None:  # noqa: N802
@@ -1543,7 +1683,7 @@ class MainWindow(QMainWindow):
             return
         st = app_prefs.app_settings()
         st.setValue("window/geometry", self.saveGeometry())
-        st.setValue("window/state", self.saveState())
+        st.setValue("window/state", self.saveState(_LAYOUT_VERSION))
         st.sync()
         self.runner.cancel()
         self.runner.wait(5000)

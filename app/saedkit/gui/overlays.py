@@ -80,6 +80,17 @@ def _label_font(size: float = 8.5, bold: bool = False) -> QFont:
     return f
 
 
+def indices_size(painter: QPainter, idx: Sequence[int], *, brackets: str = "") -> tuple[float, float]:
+    """(width, height) in device pixels of :func:`draw_indices` with the painter's font."""
+    fm = QFontMetricsF(painter.font())
+    parts = [str(abs(int(v))) for v in idx]
+    sep = " " if any(abs(int(v)) > 9 for v in idx) else ""
+    total = sum(fm.horizontalAdvance(p) for p in parts) + (fm.horizontalAdvance(sep) * (len(parts) - 1) if sep else 0.0)
+    if brackets:
+        total += fm.horizontalAdvance(brackets[0]) + fm.horizontalAdvance(brackets[1])
+    return total + 4, fm.height() + 3.0
+
+
 def draw_indices(painter: QPainter, x: float, y: float, idx: Sequence[int], *, brackets: str = "",
                  colour: QColor | None = None, background: bool = True) -> QRectF:
     """Draw Miller indices with overbars for negative ones, top-left at (x, y) in device pixels.
@@ -333,6 +344,7 @@ class RingLayer(_ScreenLayer):
         self.ellipticity = 0.0
         self.major_axis_deg = 0.0
         self.show_labels = True
+        self.placed: list = []  # PlacedLabel (device px) of the last drawing, None where left out
 
     def set_rings(self, centre_xy, radii, labels, ellipticity: float = 0.0, major_axis_deg: float = 0.0) -> None:
         self.centre_xy = None if centre_xy is None else (float(centre_xy[0]), float(centre_xy[1]))
@@ -360,26 +372,74 @@ class RingLayer(_ScreenLayer):
         pen = QPen(COLOURS["rings"], 1.3)
         pen.setStyle(Qt.PenStyle.DashLine)
         painter.setFont(_label_font(8.0))
-        for i, r in enumerate(self.radii):
+        for r in self.radii:
             pts = map_points(t, self._ring_points(r))
             painter.setBrush(Qt.BrushStyle.NoBrush)
             painter.setPen(pen)
             painter.drawPolyline(QPolygonF([QPointF(x, y) for x, y in pts]))
-            if not self.show_labels or i >= len(self.labels):
+        self.placed = []
+        if not self.show_labels:
+            return
+        self.placed = self._place_labels(painter, t, device.adjusted(40, 40, -40, -40))
+        col = COLOURS["rings"]
+        for lab in self.placed:
+            if lab is None:
                 continue
-            hkl, d = self.labels[i]
-            cx, cy = self.centre_xy
-            # successive labels step round the ring (upper right quadrant) so they do not pile up
-            ang = math.radians(-22.0 - 17.0 * (i % 4) - 6.0 * (i // 4))
-            p = map_points(t, np.array([[cx + r * math.cos(ang), cy + r * math.sin(ang)]]))[0]
-            if not device.contains(QPointF(*p)):
-                continue
+            hkl, d = self.labels[lab.index]
+            x0, y0, x1, y1 = lab.box
+            if lab.leader:
+                painter.setPen(QPen(col, 0.9))
+                near = (min(max(lab.anchor_xy[0], x0), x1), min(max(lab.anchor_xy[1], y0), y1))
+                painter.drawLine(QPointF(*lab.anchor_xy), QPointF(*near))
             if hkl is not None:
-                rect = draw_indices(painter, p[0] + 3, p[1] - 16, hkl, colour=COLOURS["rings"])
+                rect = draw_indices(painter, x0, y0, hkl, colour=col)
                 if d is not None:
-                    _draw_text_box(painter, rect.right() + 1, rect.top() - 1, [f"{d:.4f} Å"], COLOURS["rings"])
+                    _draw_text_box(painter, rect.right() + 1, y0, [f"{d:.4f} Å"], col)
             elif d is not None:
-                _draw_text_box(painter, p[0] + 3, p[1] - 16, [f"{d:.4f} Å"], COLOURS["rings"])
+                _draw_text_box(painter, x0, y0, [f"{d:.4f} Å"], col)
+
+    def _label_size(self, painter, i: int) -> tuple[float, float]:
+        hkl, d = self.labels[i]
+        w = h = 0.0
+        if hkl is not None:
+            iw, ih = indices_size(painter, hkl)
+            w, h = iw + 1, ih
+        if d is not None:
+            fm = QFontMetricsF(painter.font())
+            w += fm.horizontalAdvance(f"{d:.4f} Å") + 8
+            h = max(h, fm.height() + 6)
+        return w, h
+
+    def _place_labels(self, painter, t, bounds: QRectF) -> list:
+        """Non-overlapping places of the ring labels in device pixels (inner rings first); None: left out."""
+        from saedkit.core.label_layout import place_labels, ring_label_places
+
+        cx, cy = self.centre_xy
+        c_dev = map_points(t, np.array([[cx, cy]]))[0]
+        e, phi = self.ellipticity, math.radians(self.major_axis_deg)
+        rot = np.array([[math.cos(phi), -math.sin(phi)], [math.sin(phi), math.cos(phi)]])
+        scale = self._scale(t)
+        places = []
+        for i, r in enumerate(self.radii):
+            if i >= len(self.labels) or self.labels[i] == (None, None):
+                places.append([])
+                continue
+
+            def point_at(a_deg, r_dev, r=r):
+                # the point of the drawn (distorted) ring at azimuth a, pushed out to r_dev on screen
+                a = math.radians(a_deg)
+                v = rot @ np.array([math.cos(a), math.sin(a)])
+                u = np.linalg.solve(rot, v)  # direction in the ellipse's own frame
+                k = r / math.hypot(u[0] / (1 + e / 2), u[1] / (1 - e / 2))
+                on = map_points(t, np.array([[cx + k * v[0], cy + k * v[1]]]))[0]
+                off = on - c_dev
+                n = float(np.hypot(*off)) or 1.0
+                return tuple(on + off / n * (r_dev - r * scale))
+
+            places.append(ring_label_places((c_dev[0], c_dev[1]), r * scale, self._label_size(painter, i),
+                                            ring_number=i, point_at=point_at))
+        return place_labels(places, bounds=(bounds.left(), bounds.top(), bounds.right(), bounds.bottom()),
+                            gap_px=2.0)
 
 
 class EllipseLayer(_ScreenLayer):
@@ -433,6 +493,7 @@ class MeasureLayer(_ScreenLayer):
         self.centre: tuple[float, float] | None = None
         self.friedel = False
         self.lines: list[str] = []
+        self.label_rect: QRectF | None = None  # the read-out box as last drawn (device px)
 
     def set_points(self, a, b=None, *, lines: Sequence[str] = (), centre=None, friedel: bool = False) -> None:
         self.a = None if a is None else (float(a[0]), float(a[1]))
@@ -472,9 +533,22 @@ class MeasureLayer(_ScreenLayer):
         for x, y in dev:
             painter.drawLine(QPointF(x - 7, y), QPointF(x + 7, y))
             painter.drawLine(QPointF(x, y - 7), QPointF(x, y + 7))
+        self.label_rect = None
         if self.lines and len(dev) == 2:
             painter.setFont(_label_font(8.5))
-            _draw_text_box(painter, dev[1][0] + 10, dev[1][1] + 10, self.lines, col)
+            fm = QFontMetricsF(painter.font())
+            w = max(fm.horizontalAdvance(s) for s in self.lines) + 8
+            h = fm.height() * len(self.lines) + 6
+            inner = device.adjusted(40, 40, -40, -40)
+            x, y = dev[1][0] + 10, dev[1][1] + 10
+            # never clipped by the view's edge: flip to the other side of the point, then keep inside
+            if x + w > inner.right():
+                x = dev[1][0] - 10 - w
+            if y + h > inner.bottom():
+                y = dev[1][1] - 10 - h
+            x = min(max(x, inner.left()), inner.right() - w)
+            y = min(max(y, inner.top()), inner.bottom() - h)
+            self.label_rect = _draw_text_box(painter, x, y, self.lines, col)
 
 
 class StrokeLayer(_ScreenLayer):

@@ -977,14 +977,15 @@ class MeasurementsPanel(_Panel):
         lay.addWidget(self.view, 1)
         row = QHBoxLayout()
         self.copy_button = QPushButton("Copy table")
-        self.copy_button.setToolTip("Copy the selected rows (or all) as tab-separated text")
+        self.copy_button.setToolTip("Copy the whole table as tab-separated text (Ctrl+C in the table copies the "
+                                    "selected rows, or all when none is selected)")
         row.addStretch(1)
         row.addWidget(self.copy_button)
         lay.addLayout(row)
-        self.copy_button.clicked.connect(self.copy)
+        self.copy_button.clicked.connect(lambda: self.copy(selected_only=False))
         sc = QShortcut(QKeySequence(QKeySequence.StandardKey.Copy), self.view)
         sc.setContext(Qt.ShortcutContext.WidgetWithChildrenShortcut)
-        sc.activated.connect(self.copy)
+        sc.activated.connect(lambda: self.copy(selected_only=True))
         self.view.selectionModel().selectionChanged.connect(self._selection)
 
     def refresh(self) -> None:
@@ -1028,9 +1029,13 @@ class MeasurementsPanel(_Panel):
             sm.blockSignals(False)
         self.view.viewport().update()
 
+    def selected_rows(self) -> list[int]:
+        """Rows (in the shown order) with a selected cell."""
+        return sorted({i.row() for i in self.view.selectionModel().selectedIndexes()})
+
     def table_text(self, *, selected_only: bool = True) -> str:
         """The table (rows in their shown order) as tab-separated text with a header line."""
-        rows = sorted({i.row() for i in self.view.selectionModel().selectedRows()}) if selected_only else []
+        rows = self.selected_rows() if selected_only else []
         if not rows:
             rows = list(range(self.proxy.rowCount()))
         cols = range(self.model.columnCount())
@@ -1040,10 +1045,15 @@ class MeasurementsPanel(_Panel):
             lines.append("\t".join(self.model.text(m, c) for c in cols))
         return "\n".join(lines) + "\n"
 
-    def copy(self) -> str:
-        text = self.table_text()
+    def copy(self, *, selected_only: bool = False) -> str:
+        """Copy the table (the selected rows with ``selected_only`` when some are selected); say which."""
+        n_selected = len(self.selected_rows()) if selected_only else 0
+        text = self.table_text(selected_only=selected_only)
         QApplication.clipboard().setText(text)
-        self.ctx.show_status(f"Copied {text.count(chr(10)) - 1} rows as tab-separated text.")
+        n = text.count(chr(10)) - 1
+        what = (f"the {n} selected row{'s' if n != 1 else ''}" if n_selected
+                else f"the whole table ({n} row{'s' if n != 1 else ''})")
+        self.ctx.show_status(f"Copied {what} as tab-separated text.")
         return text
 
     def show_ruler(self, lines) -> None:

@@ -568,7 +568,7 @@ def _draw_pattern(ax, analysis, *, overlays: Sequence[str], display: str, unit: 
                     n_lab += 1
         elif len(spot_xy) and "spots" in overlays:
             for i, (x, y) in enumerate(spot_xy):
-                t = labeller.place((x, y), str(i), offsets_pt=offsets, key=("s", i),
+                t = labeller.place((x, y), str(i + 1), offsets_pt=offsets, key=("s", i),
                                    **{**text_kw, "color": COLOURS["spot"]})
                 if t is not None:
                     n_lab += 1

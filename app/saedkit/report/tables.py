@@ -60,7 +60,7 @@ _TITLE = "saedkit measurement table"
 #: Every column the table can have, in order, with its text format.
 _COLUMN_FORMATS: dict[str, str] = {
     "feature": "str",  # "spot" or "ring"
-    "index": "int",  # position in analysis.spots (spots) or ring_fit.rings (rings), from 0
+    "index": "int",  # number of the spot in analysis.spots (or ring in ring_fit.rings), from 1 as on screen
     "x_px": ".3f",
     "x_sigma_px": "sig2",
     "y_px": ".3f",
@@ -261,7 +261,7 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
                 dd = bool(getattr(p, "forbidden", False))
         g, sg = _g(d, sd)
         rows.append({
-            "feature": "spot", "index": i, "x_px": x, "x_sigma_px": sx, "y_px": y, "y_sigma_px": sy,
+            "feature": "spot", "index": i + 1, "x_px": x, "x_sigma_px": sx, "y_px": y, "y_sigma_px": sy,
             "R_px": r, "R_sigma_px": sr, "angle_deg": angle, "d_A": d, "d_sigma_A": sd,
             "g_per_nm": g, "g_sigma_per_nm": sg, "hkl": hkl,
             "hkil": hkl_tuple_four(hkl) if hexagonal else None,
@@ -305,7 +305,7 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
                 d_err = _nan(getattr(m, "d_error_pct", None))
         g, sg = _g(d, sd)
         rows.append({
-            "feature": "ring", "index": i, "x_px": math.nan, "x_sigma_px": math.nan, "y_px": math.nan,
+            "feature": "ring", "index": i + 1, "x_px": math.nan, "x_sigma_px": math.nan, "y_px": math.nan,
             "y_sigma_px": math.nan, "R_px": r, "R_sigma_px": sr, "angle_deg": math.nan, "d_A": d,
             "d_sigma_A": sd, "g_per_nm": g, "g_sigma_per_nm": sg, "hkl": hkl, "hkil": None, "phase": phase,
             "intensity": _nan(getattr(ring, "height", None)), "intensity_sigma": math.nan,
