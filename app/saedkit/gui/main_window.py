@@ -34,7 +34,6 @@ from PySide6.QtWidgets import (
     QTabWidget,
     QToolBar,
     QToolButton,
-    QVBoxLayout,
     QWidget,
 )
 

@@ -270,7 +270,6 @@ class PackedMask:
             bits = d.decompress(packed, n_bytes)
             if len(bits) != n_bytes or d.unconsumed_tail:
                 raise ValueError(f"the mask data unpacks to a size other than {n_bytes} bytes of shape {list(shape)}")
-            out = cls(shape, packed, 0)
             arr = np.unpackbits(np.frombuffer(bits, dtype=np.uint8), count=shape[0] * shape[1])
             return cls(shape, packed, int(np.count_nonzero(arr)))
         except (KeyError, TypeError, ValueError, zlib.error, base64.binascii.Error) as exc:
