@@ -34,7 +34,8 @@ import numpy as np
 
 from saedkit.core.errors import InputError
 
-__all__ = ["SeriesRun", "run_series", "prepare_series_mask", "read_series_run"]
+__all__ = ["SeriesRun", "run_series", "prepare_series_mask", "read_series_run", "default_detector_radii",
+           "write_frames_csv", "write_spots_csv", "write_series_figures"]
 
 _CHUNK_DIR = "chunks"
 _MANIFEST = "run.json"
@@ -106,6 +107,19 @@ def prepare_series_mask(series, *, max_frames: int = 64) -> np.ndarray:
     dtype = np.dtype(series.dtype)
     sat = float(np.iinfo(dtype).max) if dtype.kind in "ui" else None
     return calculate_series_mask(total, peak, saturation_value=sat)
+
+
+def default_detector_radii(frame_shape) -> tuple[float, tuple[float, float]]:
+    """Default virtual detectors of a frame shape: the bright-field radius and the dark-field annulus, pixels.
+
+    Bright field: 6 % of the frame's smaller side (at least 3 pixels);
+    annular dark field: from twice that radius to 45 % of the smaller side.
+    These are starting values (common practice is to match the bright-field
+    disc to the direct beam); give the radii explicitly for real data.
+    """
+    side = float(min(frame_shape))
+    bf = max(3.0, 0.06 * side)
+    return bf, (2.0 * bf, max(0.45 * side, 2.0 * bf + 1.0))
 
 
 def _fingerprint(series, options, frames_per_chunk: int) -> dict:
