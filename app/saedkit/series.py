@@ -297,7 +297,7 @@ def run_series(source, *, options, out_dir: str | os.PathLike, frames_per_chunk:
         if cluster is not None or scheduler == "local-cluster":
             stopped = _run_distributed(tasks, cluster, workers, _take)
         else:
-            step = max(int(workers or os.cpu_count() or 1), 1)
+            step = 1 if scheduler == "synchronous" else max(int(workers or os.cpu_count() or 1), 1)
             for i in range(0, len(tasks), step):
                 for rec in dask.compute(*tasks[i:i + step], scheduler=scheduler, num_workers=workers):
                     if _take(rec):

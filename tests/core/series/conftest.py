@@ -1,6 +1,6 @@
 """A small 4-D scan drawn in the tests from textbook zone geometry (not with saedkit's simulator).
 
-Two grains on a 5 x 6 scan of 128 px frames:
+Two grains on a 5 x 6 scan of 96 px frames:
 
 - grain A, Ni (fcc, a = 3.5239 Å, Taylor 1950 in REFERENCES.md) along [001]:
   a square net of 200-type reflections, |g| = 2/a, at 90° (textbook fcc
@@ -20,8 +20,8 @@ import numpy as np
 import pytest
 
 A_NI, A_FE = 3.5239, 2.8665
-K_PX_A = 55.0
-FRAME = 128
+K_PX_A = 45.0
+FRAME = 96
 SCAN = (5, 6)
 BAD_CONSTANT = 14  # (2, 2)
 BAD_NOISE = 27  # (4, 3)

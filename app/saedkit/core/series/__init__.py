@@ -13,12 +13,12 @@
 The Dask orchestration (chunks, resume, cluster) is :mod:`saedkit.series`.
 """
 
-from saedkit.core.series.frames import (FrameResult, SeriesOptions, analyse_frames, calculate_series_mask,
-                                        calculate_virtual_detector_sums)
+from saedkit.core.series.frames import (FrameResult, SeriesOptions, analyse_frames, calculate_rotation_period_deg,
+                                        calculate_series_mask, calculate_virtual_detector_sums)
 from saedkit.core.series.maps import SeriesMaps, calculate_series_maps, read_series_maps, write_series_maps
 from saedkit.core.series.reader import FrameSeries, open_series, split_dataset_path
 from saedkit.core.series.virtual import calculate_virtual_images
 
 __all__ = ["FrameSeries", "open_series", "split_dataset_path", "SeriesOptions", "FrameResult", "analyse_frames",
-           "calculate_series_mask", "calculate_virtual_detector_sums", "SeriesMaps", "calculate_series_maps",
+           "calculate_rotation_period_deg", "calculate_series_mask", "calculate_virtual_detector_sums", "SeriesMaps", "calculate_series_maps",
            "write_series_maps", "read_series_maps", "calculate_virtual_images"]

@@ -36,6 +36,7 @@ __all__ = ["SeriesOptions", "FrameResult", "analyse_frames", "calculate_series_m
            "calculate_virtual_detector_sums", "FRAME_FIELDS"]
 
 _NAN = float("nan")
+_STOP_DARKER = 0.5  # a beam stop's median is below this fraction of the unshadowed pixels' median
 
 
 @dataclass(frozen=True)
@@ -131,7 +132,7 @@ class FrameResult:
     confirmed and refined by this frame), ``"searched"`` (a fresh Friedel
     search) or ``""`` when the frame failed before a centre was found.
     ``spots`` holds ``(x_px, y_px, intensity, d_A)`` rows (``d_A`` NaN
-    without a camera constant). ``bright_field`` and ``dark_field`` are the
+    without a camera constant, and for the direct beam). ``bright_field`` and ``dark_field`` are the
     virtual-detector sums (counts) about the frame's centre.
     """
 
@@ -214,7 +215,9 @@ def calculate_series_mask(frame_sum, frame_max, *, saturation_value: float | Non
     Returns
     -------
     (ky, kx) bool array
-        True where pixels are excluded.
+        True where pixels are excluded. A beam stop found in the sum is kept
+        only when its pixels' median is below half the other pixels' median
+        (a real stop shadows the detector).
     """
     from saedkit.core.detection.masks import find_beam_stop_mask, find_saturated_mask
 
@@ -224,7 +227,11 @@ def calculate_series_mask(frame_sum, frame_max, *, saturation_value: float | Non
         raise InputError(f"frame_sum and frame_max must be 2-D of one shape, got {s.shape} and {m.shape}")
     mask = find_saturated_mask(m, saturation_value=saturation_value)
     if np.ptp(s) > 0:
-        mask = mask | find_beam_stop_mask(s)
+        stop = find_beam_stop_mask(s)
+        # a beam stop shadows what it covers: keep it only when its pixels are clearly darker than the rest
+        # (the sum of many different patterns can look like a bar to the search without being one)
+        if stop.any() and (~stop).any() and np.median(s[stop]) < _STOP_DARKER * np.median(s[~stop]):
+            mask = mask | stop
     return mask
 
 
@@ -330,7 +337,9 @@ def _one(image, options: SeriesOptions, phases, mask, centre_xy):
 
 def _spot_rows(analysis) -> tuple:
     recs = analysis._spot_records()  # spots with their ellipse-corrected radius and d (when K is known)
-    return tuple((float(r["x"]), float(r["y"]), float(r["intensity"]), float(r.get("d_A", _NAN))) for r in recs)
+    # the direct beam (within a pixel of the centre) has no spacing
+    return tuple((float(r["x"]), float(r["y"]), float(r["intensity"]),
+                  float(r.get("d_A", _NAN)) if r.get("radius_px", 0.0) >= 1.0 else _NAN) for r in recs)
 
 
 def calculate_rotation_period_deg(phase, zone) -> float:
