@@ -104,8 +104,11 @@ def run(args):
                         restart=args.restart, write_figures=not args.no_figures, progress=progress)
     rec = {"software": software_record(), "options": options.to_dict(), **result.to_dict()}
     n = result.series["n_frames"]
+    kept = result.n_chunks_done - result.n_chunks_computed
     lines = [f"{result.n_frames_ok}/{n} frames measured ({result.n_chunks_computed} of {result.n_chunks} chunks "
-             f"computed now, the rest kept from an earlier run); outputs in {args.out}"]
+             f"computed now" + (f", {kept} kept from an earlier run" if kept else "") + f"); outputs in {args.out}"]
+    if not result.complete:
+        lines.append("  stopped before the end: run the same command again to resume")
     if result.maps is not None:
         m = result.maps.to_dict()
         for name, count in m["phase_counts"].items():

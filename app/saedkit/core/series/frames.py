@@ -450,5 +450,7 @@ def analyse_frames(frames, *, first_frame: int, scan_shape: tuple[int, ...], opt
             prev = cxy
         except SaedkitError as exc:
             where = f"frame {i}" + (f" (scan {scan_index[0]}, {scan_index[1]})" if len(scan_index) == 2 else "")
-            out.append(FrameResult(i, scan_index, False, f"{where}: " + " ".join(str(exc).split())))
+            msg = " ".join(str(exc).split())
+            msg = msg[len("array: "):] if msg.startswith("array: ") else msg  # the frame is named instead
+            out.append(FrameResult(i, scan_index, False, f"{where}: {msg}"))
     return out
