@@ -278,7 +278,9 @@ def run_series(source, *, options, out_dir: str | os.PathLike, frames_per_chunk:
         progress(n_done_frames, total)
 
     blocks = series.to_dask(frames_per_chunk).to_delayed().ravel()
-    tasks = [dask.delayed(_analyse_chunk, pure=True)(blocks[k], k, bounds[k][0], series.scan_shape, options, mask)
+    # the mask and options enter the graph once, shared by every task (sent once to each worker)
+    mask_d, options_d = dask.delayed(mask), dask.delayed(options)
+    tasks = [dask.delayed(_analyse_chunk, pure=True)(blocks[k], k, bounds[k][0], series.scan_shape, options_d, mask_d)
              for k in pending]
     computed = 0
     stopped = False

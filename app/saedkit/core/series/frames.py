@@ -16,7 +16,10 @@ not change from frame to frame:
   once per frame.
 
 A frame that cannot be measured (no signal, NaN pixels, too few spots for a
-centre) is recorded with its error and never stops the others.
+centre) is recorded with its error and never stops the others; an
+unexpected exception in one frame is recorded too, with its type named
+(``unexpected LinAlgError: ...``), so that one odd frame of a long scan does
+not end the run.
 """
 
 from __future__ import annotations
@@ -448,9 +451,11 @@ def analyse_frames(frames, *, first_frame: int, scan_shape: tuple[int, ...], opt
                 dark_field_radii_px=options.dark_field_radii_px)
             out.append(_result(i, scan_index, analysis, method, float(bf[0]), float(df[0]), phases))
             prev = cxy
-        except SaedkitError as exc:
+        except Exception as exc:  # noqa: BLE001 - one frame never stops a series; the error is recorded
             where = f"frame {i}" + (f" (scan {scan_index[0]}, {scan_index[1]})" if len(scan_index) == 2 else "")
             msg = " ".join(str(exc).split())
             msg = msg[len("array: "):] if msg.startswith("array: ") else msg  # the frame is named instead
+            if not isinstance(exc, SaedkitError):  # not an expected failure: say what broke
+                msg = f"unexpected {type(exc).__name__}: {msg}"
             out.append(FrameResult(i, scan_index, False, f"{where}: {msg}"))
     return out
