@@ -74,3 +74,18 @@ def test_series_is_listed_with_examples(capsys):
         main(["series", "--help"])
     text = capsys.readouterr().out
     assert "examples:" in text and "--cluster" in text and ":/entry/data" in text
+
+
+def test_series_command_on_a_running_scheduler(scan_h5, tmp_path, capsys):
+    from distributed import LocalCluster
+
+    local = tmp_path / "local"
+    assert main(["series", f"{scan_h5}:/entry/data", *ARGS, "--out", str(local), "--no-figures", "--json"]) == 0
+    expected = json.loads(capsys.readouterr().out)
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=False, dashboard_address=None) as cluster:
+        out = tmp_path / "remote"
+        assert main(["series", f"{scan_h5}:/entry/data", *ARGS, "--out", str(out), "--no-figures", "--json",
+                     "--cluster", cluster.scheduler_address]) == 0
+    rec = json.loads(capsys.readouterr().out)
+    assert rec["complete"] and rec["maps"] == expected["maps"]
+    assert (out / "frames.csv").read_text() == (local / "frames.csv").read_text()
