@@ -82,7 +82,8 @@ def run(args):
             kw["calibration"] = source
         else:
             kw["camera_constant_px_A"], kw["camera_constant_sigma_px_A"] = K, K_sig
-    options = SeriesOptions(phases=tuple(args.phase or ()), voltage_kv=args.kv or 200.0, min_snr=args.min_snr,
+    kv = args.kv or (getattr(cal[3], "voltage_kv", None) if cal is not None else None) or 200.0
+    options = SeriesOptions(phases=tuple(args.phase or ()), voltage_kv=float(kv), min_snr=args.min_snr,
                             d_tolerance_pct=args.d_tol, angle_tolerance_deg=args.angle_tol,
                             max_index=args.max_index, top=args.top, drift_tolerance_px=args.drift_tol,
                             bright_field_radius_px=bf, dark_field_radii_px=adf, **kw)

@@ -138,3 +138,19 @@ def test_virtual_images_of_a_scan_larger_than_the_memory_budget(tmp_path):
     assert peak < budget, f"peak {peak / 1e6:.1f} MB for a {nbytes / 1e6:.1f} MB scan"
     np.testing.assert_allclose(bf, bf_direct, rtol=1e-9)
     np.testing.assert_allclose(df, df_direct, rtol=1e-9)
+
+
+def test_single_images_and_declared_types(tmp_path, stack):
+    with mrcfile.new(tmp_path / "one.mrc") as m:
+        m.set_data(stack[0])
+    one = open_series(tmp_path / "one.mrc")
+    assert one.n_frames == 1
+    np.testing.assert_array_equal(one.read_frame(0), stack[0])
+    folder = tmp_path / "frames"
+    folder.mkdir()
+    for i, f in enumerate(stack[:3]):
+        tifffile.imwrite(folder / f"f{i}.tif", f)
+    s = open_series(folder)
+    block = s.to_dask(2).compute()
+    assert s.dtype == "uint16" and block.dtype == np.uint16  # the dask array holds what it declares
+    np.testing.assert_array_equal(block, stack[:3])

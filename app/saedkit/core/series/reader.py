@@ -247,7 +247,8 @@ def _read_folder(s: FrameSeries, start: int, stop: int) -> np.ndarray:
         if img.shape != s.frame_shape:
             raise ImageReadError(f"{f}: frame of shape {img.shape} in a series of {s.frame_shape} frames")
         frames.append(np.asarray(img.data))
-    return np.stack(frames)
+    # read_pattern gives float32; integer frames go back to their own type (exact below 2**24)
+    return np.stack(frames).astype(np.dtype(s.dtype), copy=False)
 
 
 def _read_tiff(s: FrameSeries, start: int, stop: int) -> np.ndarray:
@@ -271,7 +272,8 @@ def _read_mrc(s: FrameSeries, start: int, stop: int) -> np.ndarray:
     import mrcfile
 
     with mrcfile.mmap(s.path, mode="r", permissive=True) as mrc:
-        return np.array(mrc.data[start:stop])
+        data = mrc.data if mrc.data.ndim == 3 else mrc.data[None]  # a single 2-D image is a series of one
+        return np.array(data[start:stop])
 
 
 def _read_npy(s: FrameSeries, start: int, stop: int) -> np.ndarray:
