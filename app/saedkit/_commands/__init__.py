@@ -11,7 +11,7 @@ import importlib
 
 # the order in which `saedkit --help` lists them
 _ORDER = ["gui", "phases", "rings", "spots", "calibrate", "calibrations", "index", "identify",
-          "tiltpair", "report", "batch", "demo"]
+          "tiltpair", "report", "batch", "series", "demo"]
 
 
 def _load():
