@@ -112,3 +112,39 @@ def test_spotty_and_textured_rings_calibrate(effect, seed):
     assert abs(cal.camera_constant_px_A / 250.0 - 1) < 2e-3
     assert [r.hkl for r in cal.rings] == list(truth.hkl)
     assert abs(cal.ellipse.ellipticity - 0.01) < 0.003
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_amorphous_halo_under_the_rings_and_a_beam_stop(seed):
+    # a support-film halo (a hump of 1500 counts, σ = 20 px at K/2.1 Å) right under the 111 and
+    # 200 rings, with a beam stop: the halo is background, not a ring, and every ring is found
+    img, truth, mask = _sim(seed, halo_counts=1500.0)
+    cal = calibrate_from_rings(img, "Au", voltage_kv=200, mask=mask)
+    assert abs(cal.camera_constant_px_A / 250.0 - 1) < 2e-3
+    assert [r.hkl for r in cal.rings] == list(truth.hkl)
+    assert cal.quality == "good", cal.warnings
+    # nothing reported at the halo's radius beyond the rings themselves
+    halo_R = 250.0 / 2.1
+    assert all(abs(u - halo_R) > 5.0 for u in cal.unassigned_radii_px)
+
+
+def test_ring_on_too_little_arc_is_rejected_with_its_reason():
+    # a short arc (20° of a circle, as a streak or a grain's few spots would give) far out in the
+    # image corner: a peak of the radial profile, but not a ring
+    from saedkit.core.detection.rings import MIN_ARC_POINTS, find_rings
+
+    img, truth, mask = _sim(3)
+    img = img.astype(np.float64)
+    cx, cy = truth.centre_xy
+    yy, xx = np.indices(img.shape)
+    r = np.hypot(xx - cx, yy - cy)
+    phi = np.degrees(np.arctan2(yy - cy, xx - cx))
+    arc = (np.abs(r - 300.0) < 2.0) & (np.abs(phi - 45.0) < 10.0)
+    img[arc] += 400.0
+    fit = find_rings(img, mask=mask)
+    assert all(abs(x.radius_px - 300.0) > 3.0 for x in fit.rings)
+    assert all(x.n_points >= MIN_ARC_POINTS for x in fit.rings)
+    near = [x for x in fit.rejected if abs(x.peak.radius_px - 300.0) < 3.0]
+    if near:  # found in the profile: reported as rejected, with the reason
+        assert "too little arc" in near[0].reason
+        assert "reason" in fit.to_dict()["rejected_rings"][0]
