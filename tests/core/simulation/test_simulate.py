@@ -51,3 +51,54 @@ def test_ring_pattern_truth_gold():
     # radius ratios of an fcc standard: √(4/3), √(8/3), √(11/3) (fcc geometry, common practice)
     assert t.radius_px[1:4] / t.radius_px[0] == pytest.approx([1.1547, 1.6330, 1.9149], abs=1e-4)
     assert t.radius_px[0] == pytest.approx(250 / 2.3545, rel=1e-4)
+
+
+def _ring_power(img, centre, R, half=6.0, bg_from=(8.0, 12.0)):
+    """Integrated counts in an annulus about R above the local background (plain numpy)."""
+    yy, xx = np.indices(img.shape)
+    r = np.hypot(xx - centre[0], yy - centre[1])
+    band = np.abs(r - R) < half
+    side = (np.abs(r - R) >= bg_from[0]) & (np.abs(r - R) < bg_from[1])
+    return float(np.sum(img[band] - np.median(img[side])))
+
+
+@pytest.mark.parametrize("effect", [dict(spots_per_ring=30.0), dict(texture_arc_deg=30.0, texture_arcs=2)])
+def test_spotty_and_textured_rings_keep_each_ring_power(effect):
+    # a few-grain or textured film redistributes a ring's intensity around it but keeps its
+    # total (kinematic powder intensity m|F|²): compare the integrated ring with the plain ring
+    au = find_phase("Au")
+    kw = dict(camera_constant_px_A=250.0, centre_xy=(255.3, 256.2), background_counts=0.0, rng=None)
+    plain, t = simulate_ring_pattern(au, **kw)
+    img, t2 = simulate_ring_pattern(au, **kw, **effect)
+    assert np.allclose(t2.radius_px, t.radius_px)
+    for R in t.radius_px[:3]:
+        assert _ring_power(img.astype(float), t.centre_xy, R) == pytest.approx(
+            _ring_power(plain.astype(float), t.centre_xy, R), rel=0.05)
+    # and it is no longer uniform around the ring: the azimuthal spread along the 111 ring is large
+    yy, xx = np.indices(img.shape)
+    on = np.abs(np.hypot(xx - 255.3, yy - 256.2) - t.radius_px[0]) < 1.0
+    assert np.std(img[on].astype(float)) > 3 * np.std(plain[on].astype(float))
+
+
+def test_halo_and_admixture_truth():
+    au, nacl = find_phase("Au"), find_phase("NaCl")
+    img, t = simulate_ring_pattern(au, camera_constant_px_A=250.0, centre_xy=(255.0, 256.0), halo_counts=800.0,
+                                   admixture=[(nacl, 0.5)], background_counts=0.0, rng=None)
+    # the admixed phase's rings obey R = K/d with NaCl's own spacings (a = 5.6402 Å, Walker et al. 2004;
+    # rock salt 200 at a/2)
+    (tn,) = t.admixture
+    assert tn.phase == "NaCl" and tn.hkl[1] == (2, 0, 0)
+    assert tn.d_A[1] == pytest.approx(5.6402 / 2, rel=1e-4)
+    assert np.allclose(tn.radius_px, 250.0 / tn.d_A)
+    assert tn.relative_intensity.max() == pytest.approx(0.5)
+    assert "admixture" in t.to_dict()
+    # the halo alone (noiseless difference with and without it): a Gaussian hump of height 800 at
+    # R = K/2.1 Å with σ = K·0.08 Å⁻¹ = 20 px
+    no_halo, _ = simulate_ring_pattern(au, camera_constant_px_A=250.0, centre_xy=(255.0, 256.0),
+                                       admixture=[(nacl, 0.5)], background_counts=0.0, rng=None)
+    halo = img.astype(float) - no_halo.astype(float)
+    yy, xx = np.indices(img.shape)
+    r = np.hypot(xx - 255.0, yy - 256.0)
+    for dr in (0.0, 20.0, -20.0):
+        on = np.abs(r - (250.0 / 2.1 + dr)) < 0.5
+        assert np.mean(halo[on]) == pytest.approx(800.0 * np.exp(-0.5 * (dr / 20.0) ** 2), abs=2.0)

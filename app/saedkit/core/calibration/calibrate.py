@@ -100,6 +100,9 @@ CHI2_LIMIT = 9.0
 PRACTICAL_RESIDUAL_PCT = 0.05
 #: Trend of residual with radius: significant at t > 3 and above this many percent across the rings.
 TREND_LIMIT_PCT = 0.1
+#: Spread (natural log) of a ring's intensity about its series' kinematic m·|F|² that is still
+#: consistent with it (a factor of about 3: texture, few grains, dynamical scattering; common practice).
+_INTENSITY_SPREAD = math.log(3.0)  # a ring counts against its series beyond a factor of ~3.6
 #: Apparent Debye–Waller factor (Å²) of observed over expected ring intensities below which
 #: the outer rings are too strong for the standard.
 APPARENT_B_LIMIT_A2 = -1.0
@@ -566,9 +569,26 @@ def find_ring_indexing(
         if key in seen:
             continue
         seen.add(key)
-        score = float(np.sum(w[m]))
-        # families predicted inside the measured range with no ring near them
         P = K * q
+        rel = (R[m] - P[idx[m]]) / P[idx[m]]
+        # each matched ring counts with the likelihood of its radius misfit (σ = a third of the
+        # tolerance): a chance coincidence of another phase's ring near a family counts little
+        like = np.exp(-0.5 * (rel / (tol / 3.0)) ** 2)
+        # ... and by its intensity: the ring's strength against the family's kinematic m·|F|²
+        # (height ∝ m|F|²/R), after one common scale. Factors of 2-3 are normal (texture, few
+        # grains, dynamical scattering) and count nearly in full; a ring many times weaker or
+        # stronger than its series allows counts against the hypothesis, as a missed ring does:
+        # it is another phase's ring at a coincident radius (a rock-salt series taken for an
+        # fcc metal has its all-odd rings far too weak)
+        if inten is not None and h is not None and np.count_nonzero(m) >= 3:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                lr = np.log(np.maximum(h[m], 1e-30) * R[m] / np.maximum(inten[idx[m]], 1e-30))
+            ok = np.isfinite(lr)
+            if np.count_nonzero(ok) >= 3:
+                dev = np.where(ok, lr - np.median(lr[ok]), 0.0)
+                like = like * (2.0 * np.exp(-0.5 * (dev / _INTENSITY_SPREAD) ** 2) - 1.0)
+        score = float(np.sum(w[m] * like))
+        # families predicted inside the measured range with no ring near them
         near = np.min(np.abs(P[:, None] - R[None, :]), axis=1) <= tol * P
         missing = [j for j in range(len(P)) if lo <= P[j] <= hi and not near[j]]
         missed: list[int] = []
@@ -578,11 +598,12 @@ def find_ring_indexing(
                 missed = [j for j, e in zip(missing, exp_snr) if np.isfinite(e) and e >= 3.0 * min_snr]
             else:
                 missed = list(missing)
-        # a ring that is there but unexplained is hard evidence; a family predicted but not seen is
-        # soft evidence without intensities (it may be weak), so it weighs less then
+        # a ring that is there but unexplained is soft evidence (a second phase, the specimen on a
+        # standard, is common); a strong family predicted but not seen is hard evidence against the
+        # hypothesis — soft without intensities (it may be weak), so it weighs less then
         score -= float(len(missed)) * (1.0 if inten is not None and h is not None else 0.25)
-        rms = float(np.sqrt(np.mean(((R[m] - P[idx[m]]) / P[idx[m]]) ** 2)))
-        cand = (score, int(np.count_nonzero(m)), -rms)
+        rms = float(np.sqrt(np.mean(rel**2)))
+        cand = (round(score, 6), int(np.count_nonzero(m)), -rms)
         if best is None or cand > best[0]:
             best = (cand, K, idx.copy(), tuple(missed))
     if best is None:
@@ -1142,14 +1163,33 @@ def calibrate_from_rings(
     outer = [i for i in unassigned if R[i] >= 0.9 * r_first]
     med_w = float(np.median(width[assigned])) if n_a else math.inf
     clear_outer = [i for i in outer if sane[i] and snr[i] >= SIGNIFICANT_SNR and width[i] <= 3.0 * med_w]
+    # a clear ring the standard does not explain is either a second phase (the specimen on an
+    # internal standard, a contamination) or a sign of the wrong standard: it is the latter when
+    # it sits where the standard's lattice has a reflection that the standard's space group or
+    # sites extinguish (Au rings read as Si: the Au 200 and 222 rings fall on Si's absent ones)
     if clear_outer:
-        poor = True
+        absent_P = K * _inverse_spacing(_absent_ring_d(phase, kv, 0.9 * K / max(float(R.max()), 1e-9)),
+                                        exact=exact, wavelength_A=lam)
+        # "sits where": as closely as the standard's own rings fit K/d (the extinct families are
+        # dense at high index, so the whole tolerance would catch a second phase's rings by chance)
+        close = max(3.0 * float(np.sqrt(np.mean((resid / pred) ** 2))), 1.5e-3) if n_a else tol_pct / 100.0
+        on_absent = [i for i in clear_outer if len(absent_P) and
+                     np.min(np.abs(absent_P - R[i]) / absent_P) <= min(close, tol_pct / 100.0)]
         rs = ", ".join(f"{R[i]:.1f}" for i in clear_outer)
-        warnings.append(
-            f"{len(clear_outer)} clear ring{'s' if len(clear_outer) != 1 else ''} (R = {rs} px) match no ring of "
-            f"{name} within ±{tol_pct:g} %: the standard may be wrong, or the pattern distorted — check the "
-            "standard, the voltage and the ellipse correction"
-        )
+        if 2 * len(on_absent) >= len(clear_outer):  # most of them: one coincidence is chance
+            poor = True
+            warnings.append(
+                f"{len(clear_outer)} clear ring{'s' if len(clear_outer) != 1 else ''} (R = {rs} px) match no ring "
+                f"of {name} within ±{tol_pct:g} %, {len(on_absent)} of them where {name} has an extinct "
+                "reflection: the standard may be wrong, or the pattern distorted — check the standard, the "
+                "voltage and the ellipse correction"
+            )
+        else:
+            warnings.append(
+                f"{len(clear_outer)} clear ring{'s' if len(clear_outer) != 1 else ''} (R = {rs} px) match no ring "
+                f"of {name} within ±{tol_pct:g} %: another phase (the specimen, a contamination) — they are "
+                "listed as unassigned and left out of K"
+            )
     clear_inner = [i for i in inner if sane[i] and snr[i] >= SIGNIFICANT_SNR and width[i] <= 3.0 * med_w]
     if clear_inner:
         rs = ", ".join(f"{R[i]:.1f}" for i in clear_inner)
@@ -1243,6 +1283,16 @@ def _ring_families(phase: Phase, voltage_kv: float, d_min_A: float) -> tuple:
 
     return tuple(f for f in calculate_ring_families(phase, d_min_A=round(d_min_A, 4), voltage_kv=voltage_kv)
                  if f.allowed)
+
+
+@lru_cache(maxsize=32)
+def _absent_ring_d(phase: Phase, voltage_kv: float, d_min_A: float) -> np.ndarray:
+    """Spacings (Å) of the phase's extinct ring families (space-group or site absences) down to ``d_min_A``."""
+    from saedkit.core.crystallography.structure_factors import calculate_ring_families
+
+    fams = calculate_ring_families(phase, d_min_A=round(max(d_min_A, 0.3), 4), voltage_kv=voltage_kv,
+                                   include_absent=True)
+    return np.array([f.d_A for f in fams if not f.allowed], float)
 
 
 def _first_d(phase: Phase) -> float:

@@ -38,6 +38,9 @@ __all__ = [
     "RingPeak",
     "EllipseFit",
     "RingFit",
+    "RejectedRing",
+    "MIN_ARC_POINTS",
+    "MIN_ARC_DEG",
     "calculate_radial_profile",
     "find_ring_peaks",
     "sample_ring_points",
@@ -521,12 +524,21 @@ def _split_unresolved(x, y, sy, fit: _GroupFit, min_snr: float, max_added: int =
     return fit
 
 
-def _half_max_widths(y: np.ndarray, peaks: np.ndarray) -> np.ndarray:
-    """Full width at half height of each peak of ``y`` (in samples), by walking down each side."""
+def _half_max_widths(y: np.ndarray, peaks: np.ndarray, base_reach: int | None = None) -> np.ndarray:
+    """Full width at half height of each peak of ``y`` (in samples), by walking down each side.
+
+    With ``base_reach`` the height is taken above the lowest value within that many samples on
+    either side (not above zero): a ring sitting on a broad hump that the background leaves in
+    ``y`` (an amorphous halo) keeps its own width.
+    """
     out = np.empty(len(peaks))
     n = len(y)
     for k, i in enumerate(peaks):
-        half = 0.5 * y[i]
+        base = 0.0
+        if base_reach:
+            lo_i, hi_i = max(i - base_reach, 0), min(i + base_reach + 1, n)
+            base = max(0.0, float(min(np.min(y[lo_i:i + 1]), np.min(y[i:hi_i]))))
+        half = base + 0.5 * (y[i] - base)
         lo = i
         while lo > 0 and y[lo - 1] > half:
             lo -= 1
@@ -650,14 +662,16 @@ def find_ring_peaks(
     if len(pk) == 0:
         return ()
     # features wider than the clipping window are background, not rings
-    narrow_enough = _half_max_widths(resid, pk) * bin_px <= background_window_px
+    # (each peak's width above the lowest point within the window on either side: a ring on an
+    # amorphous halo that SNIP partly clipped is as narrow as it is, and the halo stays wide)
+    narrow_enough = _half_max_widths(resid, pk, half_window) * bin_px <= background_window_px
     pk = pk[narrow_enough]
     if len(pk) == 0:
         return ()
     if len(pk) > max_rings:
         strongest = np.argsort(zn[pk])[::-1][: int(max_rings)]
         pk = np.sort(pk[strongest])
-    widths = _half_max_widths(resid, pk) * bin_px
+    widths = _half_max_widths(resid, pk, half_window) * bin_px
     sig0 = np.clip(widths / _FWHM_PER_SIGMA, 0.5 * bin_px, background_window_px)
 
     # group peaks whose fit windows overlap, fit each group jointly
@@ -1320,6 +1334,42 @@ def fit_concentric_ellipses(
 
 # --------------------------------------------------------------------------- the whole job
 
+#: Fewest points (sectors of its circle where it shows) behind a reported ring.
+MIN_ARC_POINTS = 6
+#: Least arc of its circle (degrees, in 10° bins holding a point) on which a reported ring shows:
+#: textured arcs and the spots of a few grains spread over more; a streak or one grain does not.
+MIN_ARC_DEG = 45.0
+
+
+def _arc_deg(points_xy: np.ndarray, centre_xy) -> float:
+    """Arc of a circle covered by points: 10° for every 10° bin of azimuth that holds one."""
+    if len(points_xy) == 0:
+        return 0.0
+    v = np.asarray(points_xy, float) - np.asarray(centre_xy, float)
+    k = np.floor((np.degrees(np.arctan2(v[:, 1], v[:, 0])) % 360.0) / 10.0).astype(int)
+    return 10.0 * len(np.unique(k))
+
+
+@dataclass(frozen=True)
+class RejectedRing:
+    """A peak of the radial profile that is not reported as a ring, and why.
+
+    Parameters
+    ----------
+    peak : RingPeak
+        The profile peak (radius, height, width and the SNR it was found with).
+    reason : str
+        Why it is not a ring, in words.
+    """
+
+    peak: RingPeak
+    reason: str
+
+    def to_dict(self) -> dict:
+        """JSON-ready record: the peak's keys and ``reason``."""
+        return {**self.peak.to_dict(), "reason": self.reason}
+
+
 
 @dataclass(frozen=True)
 class RingFit:
@@ -1335,15 +1385,20 @@ class RingFit:
         Standard uncertainties of ``e`` and ``phi``.
     rings : tuple of RingPeak
         Rings in order of radius; ``radius_px`` is the mean of the semi-axes.
-        Rings with ``n_points > 0`` were measured point by point around the
-        ring and fitted; the others (too weak for that) come from the final
-        ellipse-corrected radial profile.
+        Rings measured point by point around the ring were fitted; the
+        others (too weak for that) come from the final ellipse-corrected
+        radial profile, and ``n_points`` counts the wide sectors of their
+        circle in which they show (at least :data:`MIN_ARC_POINTS`).
     profile : RadialProfile
         The final radial profile, about ``centre`` and corrected for ``ellipse``.
     residual_rms_px : float
         RMS distance of the ring points from the fitted ellipses.
     n_points : int
         Points in the final ellipse fit.
+    rejected : tuple of RejectedRing
+        Peaks of the final profile that are not reported as rings (seen on
+        fewer than :data:`MIN_ARC_POINTS` sectors, or less than
+        :data:`MIN_ARC_DEG` degrees, of their circle), with the reason.
     """
 
     centre: CentreResult
@@ -1354,6 +1409,7 @@ class RingFit:
     profile: RadialProfile = field(repr=False)
     residual_rms_px: float = 0.0
     n_points: int = 0
+    rejected: tuple["RejectedRing", ...] = ()
 
     @property
     def radius_px(self) -> np.ndarray:
@@ -1375,6 +1431,7 @@ class RingFit:
             "rings": [r.to_dict() for r in self.rings],
             "residual_rms_px": float(self.residual_rms_px),
             "n_points": int(self.n_points),
+            "rejected_rings": [r.to_dict() for r in self.rejected],
         }
         if include_profile:
             out["profile"] = self.profile.to_dict()
@@ -1597,7 +1654,9 @@ def find_rings(
        centre moves by less than 0.01 px.
     6. The final profile (about the fitted centre, ellipse corrected) gives
        each ring's height, width and SNR; rings too weak to measure point by
-       point are added from it with their profile radius (``n_points = 0``).
+       point are added from it with their profile radius, if they show on at least
+       :data:`MIN_ARC_POINTS` of a few wide sectors of their circle (``n_points``
+       counts those); peaks on less arc are returned in ``rejected`` with the reason.
 
     The radius uncertainties are statistical; rings that overlap a much
     stronger neighbour (within about three widths) can carry a further
@@ -1676,6 +1735,7 @@ def find_rings(
                 raise FitError("the ring points could not be fitted with concentric ellipses")
             break
         fit, used = new_fit[0], [used_now[i] for i in new_fit[1]]
+        used_pts = [pts[i] for i in new_fit[1]]
         moved = float(np.hypot(*(fit.centre.xy - centre)))
         d_ell = np.hypot(*np.subtract(fit.ellipse.components, ellipse.components))
         centre, ellipse = fit.centre.xy, fit.ellipse
@@ -1688,9 +1748,11 @@ def find_rings(
     profile = calculate_radial_profile(img, centre, mask=msk, ellipse=ellipse, bin_px=bin_px)
     final_peaks = find_ring_peaks(profile, min_snr=min_snr, max_rings=max_rings)
     rings: list[RingPeak] = []
+    rejected: list[RejectedRing] = []
     matched = set()
     for k, p_used in enumerate(used):
         r_fit = float(fit.radius_px[k])
+        arc = _arc_deg(used_pts[k][fit.inliers[k]], fit.centre.xy)
         best = None
         if final_peaks:
             j = int(np.argmin([abs(q.radius_px - r_fit) for q in final_peaks]))
@@ -1699,6 +1761,11 @@ def find_rings(
                 best = q
                 matched.add(j)
         src = best or p_used
+        if arc < MIN_ARC_DEG:
+            rejected.append(RejectedRing(src, (
+                f"measured on {arc:.0f}° of its circle only (at least {MIN_ARC_DEG:g}° needed): "
+                "too little arc to be a ring (a streak, a few grains' spots, an edge)")))
+            continue
         rings.append(
             RingPeak(
                 radius_px=r_fit,
@@ -1709,13 +1776,31 @@ def find_rings(
                 n_points=int(np.count_nonzero(fit.inliers[k])),
             )
         )
-    # rings too weak to measure point by point, from the final profile,
-    # unless they sit on the flank of a measured ring
+    # rings too weak to measure point by point, from the final profile, unless they sit on the
+    # flank of a measured ring; each must still show on enough of its arc (in a few wide
+    # sectors), or it is reported as rejected: a profile peak made by a small arc (an image
+    # corner, a mask edge, a streak) is not a ring
     for j, q in enumerate(final_peaks):
-        if j not in matched and all(
+        if j in matched or not all(
             abs(q.radius_px - r.radius_px) > max(q.width_px, r.width_px) for r in rings
         ):
-            rings.append(q)
+            continue
+        n_sec = int(np.clip((q.snr / 2.5) ** 2, MIN_ARC_POINTS, 36))
+        sigma_w = _sector_sigma(q.width_px, bin_px)
+        xy, _, _ = _sample_ring(
+            img, msk, centre, ellipse, q.radius_px, n_sectors=n_sec,
+            half_width_px=max(4.0 * sigma_w + 2.0, 5.0), sigma_w=sigma_w,
+            neighbour_offsets=[(r.radius_px - q.radius_px, _sector_sigma(r.width_px, bin_px)) for r in rings],
+            tie_neighbours=False, min_sector_snr=3.0,
+        )
+        arc = _arc_deg(xy, centre)
+        if len(xy) >= MIN_ARC_POINTS and arc >= MIN_ARC_DEG:
+            rings.append(RingPeak(q.radius_px, q.radius_sigma_px, q.height, q.width_px, q.snr, n_points=int(len(xy))))
+        else:
+            rejected.append(RejectedRing(q, (
+                f"a peak of the radial profile (SNR {q.snr:.1f}) that shows on only {len(xy)} of {n_sec} "
+                f"sectors of its circle, {arc:.0f}° (at least {MIN_ARC_POINTS} sectors and {MIN_ARC_DEG:g}° "
+                "needed): too little arc to be a ring")))
     rings.sort(key=lambda r: r.radius_px)
     if progress is not None:
         progress(total, total)
@@ -1728,6 +1813,7 @@ def find_rings(
         profile=profile,
         residual_rms_px=fit.residual_rms_px,
         n_points=fit.n_points,
+        rejected=tuple(rejected),
     )
 
 

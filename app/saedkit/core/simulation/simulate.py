@@ -16,6 +16,7 @@ bring back (Si 200 at [011]).
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -23,6 +24,7 @@ import numpy as np
 from saedkit.core._validate import check_positive
 from saedkit.core.crystallography.crystal import Phase, reduce_indices
 from saedkit.core.distortion import NO_DISTORTION, Ellipse
+from saedkit.core.errors import InputError
 from saedkit.core.optics import calculate_wavelength_A
 from saedkit.core.simulation.render import BeamStop, Detector, render_pattern
 from saedkit.core.crystallography.structure_factors import calculate_reflections, calculate_ring_families
@@ -73,14 +75,18 @@ class RingPatternTruth:
     d_A: np.ndarray = field(repr=False)
     radius_px: np.ndarray = field(repr=False)
     relative_intensity: np.ndarray = field(repr=False)
+    admixture: tuple["RingPatternTruth", ...] = ()  # rings of the other phases of a mixture
 
     def to_dict(self) -> dict:
-        return {
+        out = {
             "phase": self.phase, "camera_constant_px_A": self.camera_constant_px_A, "centre_px": list(self.centre_xy),
             "ellipse": self.ellipse.to_dict(), "voltage_kv": self.voltage_kv,
             "rings": [{"hkl": list(h), "d_A": float(d), "radius_px": float(r), "relative_intensity": float(i)}
                       for h, d, r, i in zip(self.hkl, self.d_A, self.radius_px, self.relative_intensity)],
         }
+        if self.admixture:
+            out["admixture"] = [t.to_dict() for t in self.admixture]
+        return out
 
 
 def _default_centre(shape, rng):
@@ -210,6 +216,59 @@ def simulate_spot_pattern(
     return image, truth
 
 
+def _ring_extra_model(shape, c, ellipse, R, power, *, ring_width_px, spots_per_ring, multiplicity,
+                      texture_arc_deg, texture_arcs, halo_counts, halo_radius_px, halo_sigma_px, gen):
+    """Noise-free model of spotty or textured rings and of an amorphous halo (counts per pixel)."""
+    rows, cols = shape
+    yy, xx = np.indices((rows, cols), dtype=np.float64)
+    ideal = ellipse.correct_array(np.stack([(xx - c[0]).ravel(), (yy - c[1]).ravel()], axis=1))
+    r_ideal = np.hypot(*ideal.T).reshape(rows, cols)
+    ang = np.arctan2(ideal[:, 1], ideal[:, 0]).reshape(rows, cols)
+    model = np.zeros((rows, cols))
+    if halo_counts > 0:
+        model += halo_counts * np.exp(-0.5 * ((r_ideal - halo_radius_px) / halo_sigma_px) ** 2)
+    s = ring_width_px
+    m_ref = float(np.max(multiplicity)) if len(multiplicity) else 1.0
+    for i, (rad, p) in enumerate(zip(R, power)):
+        if spots_per_ring is not None:
+            # each grain in the Bragg condition gives one spot (and its Friedel mate); more
+            # reflections in the family (multiplicity m) give proportionally more spots
+            n = max(1, int(gen.poisson(max(spots_per_ring * multiplicity[i] / m_ref, 0.5) / 2.0)))
+            phi = gen.uniform(0.0, 2.0 * np.pi, n)
+            phi = np.concatenate([phi, phi + np.pi])
+            share = gen.lognormal(0.0, 0.5, n)
+            share = np.concatenate([share, share])
+            share *= p / share.sum()  # each spot's integrated counts
+            offs = rad * np.stack([np.cos(phi), np.sin(phi)], axis=1)
+            obs = c + ellipse.distort_array(offs)
+            half = int(np.ceil(5 * s)) + 1
+            for (sx, sy), a in zip(obs, share):
+                x0, x1 = max(int(sx) - half, 0), min(int(sx) + half + 2, cols)
+                y0, y1 = max(int(sy) - half, 0), min(int(sy) + half + 2, rows)
+                if x0 >= x1 or y0 >= y1:
+                    continue
+                gx = np.exp(-((np.arange(x0, x1) - sx) ** 2) / (2 * s * s))
+                gy = np.exp(-((np.arange(y0, y1) - sy) ** 2) / (2 * s * s))
+                model[y0:y1, x0:x1] += a / (2 * np.pi * s * s) * np.outer(gy, gx)
+            continue
+        band = np.abs(r_ideal - rad) < 6 * s
+        h = p / (2 * np.pi * rad * np.sqrt(2 * np.pi) * s)  # peak height of the uniform ring
+        weight = np.ones(np.count_nonzero(band))
+        if texture_arc_deg is not None:
+            # arcs in Friedel pairs (φ and φ + 180°) at random azimuths, each ring its own
+            centres = gen.uniform(0.0, np.pi, texture_arcs)
+            sig = np.deg2rad(texture_arc_deg) / 2.3548
+            a = ang[band]
+            weight = np.zeros(len(a))
+            for c0 in centres:
+                dphi = np.angle(np.exp(1j * 2 * (a - c0))) / 2.0  # distance to the nearer of c0, c0 + π
+                weight += np.exp(-0.5 * (dphi / sig) ** 2)
+            # the ring's total power is kept: the arcs carry what the full ring would
+            weight *= 2 * np.pi / (2 * texture_arcs * np.sqrt(2 * np.pi) * sig)
+        model[band] += h * weight * np.exp(-((r_ideal[band] - rad) ** 2) / (2 * s * s))
+    return model
+
+
 def simulate_ring_pattern(
     phase: Phase,
     *,
@@ -223,26 +282,117 @@ def simulate_ring_pattern(
     background_counts: float = 400.0,
     beam_stop: BeamStop | None = None,
     detector: Detector = Detector(),
+    spots_per_ring: float | None = None,
+    texture_arc_deg: float | None = None,
+    texture_arcs: int = 2,
+    halo_counts: float = 0.0,
+    halo_d_A: float = 2.1,
+    halo_width_per_A: float = 0.08,
+    admixture: Sequence[tuple[Phase, float]] = (),
     rng: np.random.Generator | None = None,
 ) -> tuple[np.ndarray, RingPatternTruth]:
-    """Simulate the ring pattern of a fine-grained, untextured film of ``phase``.
+    """Simulate the ring pattern of a polycrystalline film of ``phase``.
 
     Ring heights follow ``m·|F|² / R`` (the ring's power spread over its
     circumference), scaled so the strongest ring peaks at ``peak_counts``.
+    By default the film is fine-grained and untextured (smooth, uniform rings).
+
+    Parameters
+    ----------
+    phase : Phase
+    shape, camera_constant_px_A, centre_xy, ellipse, voltage_kv
+        Image size, K (pixel·Å), centre, distortion, voltage.
+    peak_counts : float
+        Peak height of the strongest ring of ``phase`` as a uniform ring, counts.
+    ring_width_px : float
+        Gaussian sigma of a ring's radial profile (and of a grain's spot).
+    background_counts : float
+        Diffuse background (see :func:`~saedkit.core.simulation.render.render_pattern`).
+    beam_stop, detector
+        As for :func:`~saedkit.core.simulation.render.render_pattern`.
+    spots_per_ring : float, optional
+        A nanocrystalline film of few grains: each ring is a set of discrete
+        spots (in Friedel pairs) at random azimuths, on average this many on
+        the ring of largest multiplicity and proportionally fewer on the others,
+        with log-normal (σ = 0.5) scatter of their strengths; a ring keeps its
+        total power.
+    texture_arc_deg : float, optional
+        A textured film: each ring is seen only in ``texture_arcs`` pairs of
+        arcs (φ and φ + 180°) of this FWHM at random azimuths, keeping its power.
+    texture_arcs : int
+        Arc pairs per ring when textured.
+    halo_counts, halo_d_A, halo_width_per_A : float
+        An amorphous support-film halo: a broad Gaussian hump of this peak height
+        (counts) centred at ``1/halo_d_A`` in reciprocal space with this σ (Å⁻¹),
+        so at ``K/halo_d_A`` pixels with σ ``K·halo_width_per_A``. The default
+        2.1 Å is about where the first maximum of amorphous carbon lies (from memory).
+    admixture : sequence of (Phase, weight)
+        Further phases in the film (a specimen on a standard, a two-phase
+        mixture): their rings are drawn the same way, scaled so that each
+        phase's strongest ring is ``weight`` times ``peak_counts``.
+    rng : numpy.random.Generator, optional
+        Noise, grain and texture source; without one the image is noiseless
+        (and the grains and arcs come from a fixed seed).
+
+    Returns
+    -------
+    image : ndarray
+    truth : RingPatternTruth
+        The rings of ``phase``; those of each admixed phase are in ``truth.admixture``.
     """
     K = check_positive("camera_constant_px_A", camera_constant_px_A)
     rows, cols = shape
     c = np.asarray(centre_xy if centre_xy is not None else _default_centre(shape, rng), float)
     r_max = min(c[0], cols - 1 - c[0], c[1], rows - 1 - c[1]) * (1 - ellipse.ellipticity) - 4 * ring_width_px
-    fams = calculate_ring_families(phase, d_min_A=K / max(r_max, 1.0), voltage_kv=voltage_kv)
-    d = np.array([f.d_A for f in fams])
-    R = K / d
-    h = np.array([f.intensity for f in fams]) / R
-    h = h / h.max() if len(h) else h
-    image, _ = render_pattern(
-        shape, c, ring_radius_px=R, ring_intensity=peak_counts * h, ring_width_px=ring_width_px,
-        ellipse=ellipse, background_intensity=background_counts, beam_stop=beam_stop, detector=detector, rng=rng,
+
+    def rings_of(ph, weight):
+        fams = calculate_ring_families(ph, d_min_A=K / max(r_max, 1.0), voltage_kv=voltage_kv)
+        d = np.array([f.d_A for f in fams])
+        R = K / d
+        h = np.array([f.intensity for f in fams]) / R
+        h = weight * h / h.max() if len(h) else h
+        return fams, d, R, h
+
+    fams, d, R, h = rings_of(phase, 1.0)
+    parts = [(phase, fams, d, R, h)]
+    for ph, wgt in admixture:
+        if not isinstance(ph, Phase):
+            raise InputError(f"admixture must hold (Phase, weight) pairs, got {type(ph).__name__}")
+        parts.append((ph, *rings_of(ph, check_positive("admixture weight", wgt))))
+    plain = spots_per_ring is None and texture_arc_deg is None
+    if spots_per_ring is not None:
+        spots_per_ring = check_positive("spots_per_ring", spots_per_ring)
+    if texture_arc_deg is not None:
+        texture_arc_deg = check_positive("texture_arc_deg", texture_arc_deg)
+        if int(texture_arcs) < 1:
+            raise InputError(f"texture_arcs must be >= 1, got {texture_arcs!r}")
+    all_R = np.concatenate([p[3] for p in parts])
+    all_h = np.concatenate([p[4] for p in parts])
+    image, rt = render_pattern(
+        shape, c, ring_radius_px=all_R if plain else None, ring_intensity=peak_counts * all_h if plain else None,
+        ring_width_px=ring_width_px, ellipse=ellipse, background_intensity=background_counts, beam_stop=beam_stop,
+        detector=detector, rng=rng,
     )
+    if not plain or halo_counts > 0:
+        gen = rng if rng is not None else np.random.default_rng(0)
+        mult = np.concatenate([[f.multiplicity for f in p[1]] for p in parts]).astype(float)
+        power = peak_counts * all_h * 2 * np.pi * all_R * np.sqrt(2 * np.pi) * ring_width_px
+        extra = _ring_extra_model(
+            (rows, cols), c, ellipse, [] if plain else all_R, [] if plain else power,
+            ring_width_px=ring_width_px, spots_per_ring=spots_per_ring, multiplicity=mult,
+            texture_arc_deg=texture_arc_deg, texture_arcs=int(texture_arcs),
+            halo_counts=float(halo_counts), halo_radius_px=K / check_positive("halo_d_A", halo_d_A),
+            halo_sigma_px=K * check_positive("halo_width_per_A", halo_width_per_A), gen=gen,
+        )
+        if rt.beam_stop_mask is not None:
+            extra[rt.beam_stop_mask] *= beam_stop.transmission
+        gain = detector.counts_per_unit
+        # a sum of independent Poisson variables is Poisson: the extra signal's own noise is added
+        add = gen.poisson(np.clip(extra * gain, 0, 1e12)) / gain if rng is not None else extra
+        total = np.clip(image.astype(np.float64) + add, 0, detector.full_well)
+        image = (np.round(total) if np.dtype(detector.dtype).kind in "ui" else total).astype(detector.dtype)
+    truths = [RingPatternTruth(p[0].name, K, (float(c[0]), float(c[1])), ellipse, float(voltage_kv),
+                               tuple(f.hkl for f in p[1]), p[2], p[3], p[4]) for p in parts]
     truth = RingPatternTruth(phase.name, K, (float(c[0]), float(c[1])), ellipse, float(voltage_kv),
-                             tuple(f.hkl for f in fams), d, R, h)
+                             tuple(f.hkl for f in fams), d, R, h, admixture=tuple(truths[1:]))
     return image, truth
