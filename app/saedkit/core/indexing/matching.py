@@ -155,11 +155,23 @@ class _Zolz:
         self.allowed = ~zero & ~phase.is_space_group_absent_array(self.hkl)
         self.centring_absent = phase.is_centring_absent_array(self.hkl)
         self.index = {tuple(h): i for i, h in enumerate(self.hkl.tolist())}
-        allowed_set = {tuple(h) for h in self.hkl[self.allowed].tolist()}
+        # forbidden but the sum of two allowed reflections of the zone (double diffraction): h − a allowed
         self.double = np.zeros(len(self.hkl), bool)
-        for i in np.flatnonzero(~self.allowed & ~self.centring_absent):
-            h = self.hkl[i]
-            self.double[i] = any(tuple((h - np.array(a1)).tolist()) in allowed_set for a1 in allowed_set)
+        cand = np.flatnonzero(~self.allowed & ~self.centring_absent)
+        ah = self.hkl[self.allowed]
+        if len(cand) and len(ah):
+            span = 4 * int(np.abs(self.hkl).max()) + 1
+
+            def key(h):
+                h = h + span // 2
+                return (h[..., 0] * span + h[..., 1]) * span + h[..., 2]
+
+            allowed_keys = np.sort(key(ah))
+            for lo in range(0, len(cand), 256):
+                part = cand[lo:lo + 256]
+                kd = key(self.hkl[part][:, None, :] - ah[None, :, :])
+                pos = np.clip(np.searchsorted(allowed_keys, kd), 0, len(allowed_keys) - 1)
+                self.double[part] = np.any(allowed_keys[pos] == kd, axis=1)
         self.imax = float(self.intensity[self.allowed].max()) if self.allowed.any() else 1.0
 
 
@@ -356,8 +368,12 @@ def _search_lattice(p, lattice: Lattice2D, *, phases, K_given, K_sig, dtol, atol
             g1_target = r1 / K_given
             g_h1_cap = g1_target * (1 + dtol)
         else:
-            g_min = float(calculate_reflections(phase, g_max_per_A=1.0 / min(phase.cell.a, phase.cell.b, phase.cell.c) * 2.01).g_per_A.min())
-            g_h1_cap = 3.5 * g_min
+            t_low = calculate_reflections(phase, g_max_per_A=1.0 / min(phase.cell.a, phase.cell.b, phase.cell.c) * 2.01)
+            g_min = float(t_low.g_per_A.min())
+            g_allowed = float(t_low.g_per_A[t_low.allowed].min()) if t_low.allowed.any() else g_min
+            # a long axis makes g_min tiny: the shortest allowed reflection bounds the basis too
+            # (anatase or corundum [001] have no spot below 2× their lowest allowed |g|)
+            g_h1_cap = max(3.5 * g_min, 2.0 * g_allowed)
         g_cap = g_h1_cap * (r2 / r1) * (1 + dtol) * 1.001
         # rounded caps let repeated searches (GUI, batch) reuse the cached tables
         g_h1_cap = float(np.ceil(g_h1_cap * 50) / 50)
