@@ -551,7 +551,10 @@ def _score_hypothesis(phase, u, h1, h2, lattice: Lattice2D, v, R, p, centre, Dm,
         n_inner_missing = int(np.sum(missing & (rz[strong] < r_inner)))
 
     # HOLZ ring among the spots off the zero-order net: checks the zone and the cell
-    holz, ring = _find_holz_ring(phase, u, v, R, ~explained, K_use, voltage_kv)
+    # (outside the zero-order spots: the zero-order zone fades where the Ewald sphere leaves it, well
+    # inside the ring; a family of a second lattice at one radius is not a ring)
+    r_zolz = float(R[explained].max()) if explained.any() else 0.0
+    holz, ring = _find_holz_ring(phase, u, v, R, ~explained & (R > 0.95 * r_zolz), K_use, voltage_kv)
     # explained fraction: spots off this candidate's lattice (a second lattice, dust) count a quarter,
     # HOLZ-ring spots not at all, so unexplained spots never veto the lattice that explains the rest
     on_lat = inl & ~ring
@@ -606,10 +609,10 @@ def _score_hypothesis(phase, u, h1, h2, lattice: Lattice2D, v, R, p, centre, Dm,
 
 
 def _find_holz_ring(phase, u, v, R, candidates_mask, K_use, voltage_kv):
-    """The densest thin annulus (±3 %) of at least 4 spots off the zero-order net, spread round the centre."""
+    """The densest thin annulus (±3 %) of at least 5 spots off the zero-order net, spread round the centre."""
     ring = np.zeros(len(R), bool)
     idx = np.flatnonzero(candidates_mask & (R > 0))
-    if len(idx) < 4 or not (K_use > 0):
+    if len(idx) < 5 or not (K_use > 0):
         return None, ring
     Ru = R[idx]
     best = None
@@ -618,7 +621,7 @@ def _find_holz_ring(phase, u, v, R, candidates_mask, K_use, voltage_kv):
         if best is None or m.sum() > best.sum():
             best = m
     members = idx[best]
-    if len(members) < 4:
+    if len(members) < 5:
         return None, ring
     az = np.arctan2(v[members, 1], v[members, 0])
     spread = 1 - abs(np.mean(np.exp(1j * az)))  # 0 when all in one direction
