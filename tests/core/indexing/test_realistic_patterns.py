@@ -242,3 +242,32 @@ def test_no_match_gives_reasons():
     _, t2 = simulate_spot_pattern(co, (0, 0, 1), shape=SHAPE, camera_constant_px_A=300)
     res2 = match_zone_axes(t2.xy, t2.centre_xy, [find_phase("Fe")], camera_constant_px_A=300, image_shape=SHAPE)
     assert not res2.candidates and any("missing from the candidates" in n for n in res2.notes)
+
+
+# --- a Σ3 twin in fcc: 60° about <111> (Σ3 coincidence twin; textbook, from memory). Seen along a common
+# <110>, the twin's spots fill 1/3 positions of the matrix's {111} rows: both lattices share a sub-cell
+def _rotation(axis, angle_deg):
+    a = np.array(axis, float) / np.linalg.norm(axis)
+    t = math.radians(angle_deg)
+    W = np.array([[0, -a[2], a[1]], [a[2], 0, -a[0]], [-a[1], a[0], 0]])
+    return np.eye(3) + math.sin(t) * W + (1 - math.cos(t)) * W @ W  # Rodrigues' formula
+
+
+@pytest.mark.parametrize("calibrated", [False, True])
+def test_sigma3_twin_both_lattices_indexed(calibrated):
+    cu = find_phase("Cu")
+    K = 330.0
+    _, t = simulate_spot_pattern(cu, (0, 1, 1), shape=SHAPE, camera_constant_px_A=K, rotation_deg=20, thickness_A=300,
+                                 second=SecondCrystal(cu, _rotation((1, -1, 1), 60.0)))
+    res = match_zone_axes(t.xy, t.centre_xy, [cu], image_shape=SHAPE, camera_constant_px_A=K if calibrated else None)
+    best, second, orel = res.candidates[0], res.second, res.orientation_relationship
+    assert _family(cu, best.zone) == _family(cu, (0, 1, 1))
+    assert abs(best.camera_constant_px_A / K - 1) < 0.01  # not the sub-cell's K (80 % off before)
+    assert second is not None and _family(cu, second.zone) == _family(cu, (0, 1, 1))
+    assert best.n_explained + second.n_explained >= len(t.xy) - 2
+    # twin plane {111} common to both, the shared <110> along the beam, grids turned by the {111}–{111}
+    # angle 70.53° (textbook, from memory)
+    assert _plane_family(cu, orel.plane_1) == _plane_family(cu, (1, 1, 1)) == _plane_family(cu, orel.plane_2)
+    assert orel.plane_deviation_deg < 1.0
+    turn = abs(orel.rotation_deg) % 180
+    assert min(abs(turn - 70.53), abs(turn - 109.47)) < 1.0

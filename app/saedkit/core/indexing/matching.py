@@ -278,6 +278,27 @@ def match_zone_axes(
             key = (cd.phase, _canonical_zone(by_name[cd.phase], cd.zone))
             if key not in best_of_zone or cd.score > best_of_zone[key][0].score:
                 best_of_zone[key] = (cd, lat)
+    if not best_of_zone or max(cl[0].score for cl in best_of_zone.values()) < 0.5:
+        # poor or no match: the spots of two overlapping lattices (a twin) can fill a common sub-cell that
+        # wins the lattice search; try the larger cells that hold many Friedel pairs
+        area = abs(lattice.g1_px[0] * lattice.g2_px[1] - lattice.g1_px[1] * lattice.g2_px[0])
+        for _ in range(2):
+            try:
+                alt = find_lattice_2d(p, c, ellipse=ellipse, weights=weights, camera_constant_px_A=K_given,
+                                      min_cell_area_px2=1.5 * area)
+            except FitError:
+                break
+            if alt.inliers.sum() < max(4, 0.25 * len(p)):
+                break
+            cands, npr = _search_lattice(p, alt, K_given=K_given, **common)
+            n_pairs += npr
+            for cd in cands:
+                key = (cd.phase, _canonical_zone(by_name[cd.phase], cd.zone))
+                if key not in best_of_zone or cd.score > best_of_zone[key][0].score:
+                    best_of_zone[key] = (cd, alt)
+            if cands and max(cd.score for cd in cands) >= 0.5:
+                break
+            area = abs(alt.g1_px[0] * alt.g2_px[1] - alt.g1_px[1] * alt.g2_px[0])
     ranked = sorted(best_of_zone.values(), key=lambda cl: -cl[0].score)
     candidates = [cl[0] for cl in ranked]
     if ranked:
