@@ -94,7 +94,7 @@ def test_hand_built_orthorhombic_pattern():
 # --- double diffraction: Si 200 at [011] is forbidden, = 11̄1 + 111̄ (Edington 1976, from memory)
 def test_double_diffraction_spots_indexed_and_flagged():
     # fcc [011] net: g(11̄1) and g(1̄1̄1) at 70.53°, equal length; 200 bisects them (REFERENCES.md zone table)
-    a, K = 5.4307, 350.0  # Si lattice parameter, REFERENCES.md
+    a, K = 5.4311, 350.0  # Si lattice parameter, REFERENCES.md (NIST SRM 640f)
     g111 = K * math.sqrt(3) / a
     half = math.radians(70.53 / 2)
     e1 = g111 * np.array([math.cos(half), math.sin(half)])
@@ -126,7 +126,7 @@ def test_holz_ring_found_and_checks_the_cell():
     assert abs(best.camera_constant_px_A / K - 1) < 0.01
     assert best.holz is not None
     # closed form, independent of saedkit: H = 1/a, k = 1/λ (λ = 0.02508 Å at 200 kV, handbook value)
-    H = 1 / 5.4307
+    H = 1 / 5.4311  # Si a, REFERENCES.md (NIST SRM 640f)
     k = 1 / 0.025079
     G = math.sqrt(2 * k * H - H * H)
     assert abs(best.holz.predicted_radius_px / (K * G) - 1) < 0.01
@@ -271,3 +271,83 @@ def test_sigma3_twin_both_lattices_indexed(calibrated):
     assert orel.plane_deviation_deg < 1.0
     turn = abs(orel.rotation_deg) % 180
     assert min(abs(turn - 70.53), abs(turn - 109.47)) < 1.0
+
+
+# --- hand-built inputs (a few lines of numpy from textbook geometry, not the simulator)
+def _rot2(deg):
+    t = math.radians(deg)
+    return np.array([[math.cos(t), -math.sin(t)], [math.sin(t), math.cos(t)]])
+
+
+def test_hand_built_holz_ring_gives_the_layer_spacing():
+    # Si [001]: square net of 220 (|g| = 2√2/a), 400 on the diagonals (REFERENCES.md zone table, fcc [001]);
+    # a FOLZ ring of radius G = sqrt(2kH − H²), H = 1/a, k = 1/λ (λ = 0.025079 Å at 200 kV, handbook value)
+    a, K, lam = 5.4311, 110.0, 0.025079
+    g220 = 2 * math.sqrt(2) / a
+    net = [K * g220 * np.array([m, n]) for m in range(-2, 3) for n in range(-2, 3) if (m, n) != (0, 0)]
+    H, k = 1 / a, 1 / lam
+    G = math.sqrt(2 * k * H - H * H)
+    ring = [K * G * np.array([math.cos(t), math.sin(t)]) for t in np.radians(np.arange(7, 360, 29.0))]
+    centre = np.array([512.4, 509.6])
+    xy = centre + np.vstack([net, ring]) @ _rot2(12).T
+    ph = find_phase("Si")
+    best = match_zone_axes(xy, centre, [ph], camera_constant_px_A=K, image_shape=SHAPE).candidates[0]
+    assert _family(ph, best.zone) == _family(ph, (0, 0, 1))
+    assert best.holz is not None and best.holz.n_spots == len(ring)
+    assert best.holz.layer_spacing_per_A == pytest.approx(H, rel=0.005)
+    assert best.holz.predicted_layer_spacing_per_A == pytest.approx(H, rel=1e-4)  # the library cell: 5.43115 Å
+    assert best.holz.radius_px == pytest.approx(K * G, rel=1e-3)
+    assert best.fraction_explained == 1.0
+
+
+def test_hand_built_tilted_pattern_gives_the_laue_circle():
+    # bcc Fe [001]: square net of 110 (|g| = √2/a, a = 2.8665 Å, REFERENCES.md); beam tilted by τ towards
+    # the image direction φ: the Laue circle through the origin has its centre at k·sin τ along φ, and each
+    # spot is as bright as the kinematic relrod 1/(1 + (π t s)²) at s = (|g|² − 2 g·C)/(2k) makes it
+    a, K, lam, t_A = 2.8665, 380.0, 0.025079, 500.0
+    tau, phi = 0.012, 200.0  # 12 mrad (0.69°)
+    g110 = math.sqrt(2) / a
+    k = 1 / lam
+    C = k * math.sin(tau) * np.array([math.cos(math.radians(phi)), math.sin(math.radians(phi))])
+    g = np.array([g110 * np.array([m, n]) for m in range(-4, 5) for n in range(-4, 5) if (m, n) != (0, 0)])
+    s = (np.sum(g * g, axis=1) - 2 * g @ C) / (2 * k)
+    excitation = 1 / (1 + (math.pi * t_A * s) ** 2)
+    seen = excitation > 0.02
+    fe = find_phase("Fe")
+    # kinematic |F|² of 110-type and 200-type reflections differ; the matcher divides them out: use its
+    # structure factors' ratio only through the phase (bcc: F = 2 f, so |F|² falls with |g| as f²)
+    from saedkit.core.crystallography.structure_factors import calculate_structure_factor_array
+    hk = np.array([[m + n, n - m, 0] for m in range(-4, 5) for n in range(-4, 5) if (m, n) != (0, 0)])
+    power = np.abs(calculate_structure_factor_array(fe, hk, voltage_kv=200.0)) ** 2
+    centre = np.array([500.2, 515.7])
+    xy = centre + K * g[seen]
+    inten = (excitation * power)[seen] * np.exp(np.random.default_rng(3).normal(0, 0.5, seen.sum()))
+    best = match_zone_axes(xy, centre, [fe], spots_intensity=inten, image_shape=SHAPE).candidates[0]
+    assert _family(fe, best.zone) == _family(fe, (0, 0, 1))
+    assert best.tilt.method == "intensities"
+    assert abs((best.tilt.azimuth_deg - phi + 180) % 360 - 180) < 10
+    assert best.tilt.tilt_mrad == pytest.approx(tau * 1e3, rel=0.25)
+
+
+def test_hand_built_kurdjumov_sachs_pair():
+    # fcc Ni [1̄10] (a = 3.5239 Å) and bcc Fe [11̄1] (a = 2.8665 Å), REFERENCES.md; KS puts g(111)fcc ∥ g(011)bcc.
+    # fcc [1̄10] net: 111 and 002 at 54.74°; bcc [11̄1] net: 011 and 101 at 60°, equal lengths (textbook angles)
+    K, af, ab = 320.0, 3.5239, 2.8665
+    f1 = math.sqrt(3) / af * np.array([1.0, 0.0])
+    f2 = 2 / af * np.array([math.cos(math.radians(54.7356)), math.sin(math.radians(54.7356))])
+    b1 = math.sqrt(2) / ab * np.array([1.0, 0.0])
+    b2 = math.sqrt(2) / ab * np.array([math.cos(math.radians(60.0)), math.sin(math.radians(60.0))])
+    fcc = [m * f1 + n * f2 for m in range(-4, 5) for n in range(-3, 4) if (m, n) != (0, 0)]
+    bcc = [m * b1 + n * b2 for m in range(-3, 4) for n in range(-3, 4) if (m, n) != (0, 0)]
+    fcc = [q for q in fcc if np.hypot(*q) < 1.45]
+    bcc = [q for q in bcc if np.hypot(*q) < 1.2 and min(np.hypot(*(q - f)) for f in fcc) > 0.03]
+    centre = np.array([505.5, 498.3])
+    xy = centre + K * np.vstack([fcc, bcc]) @ _rot2(-33).T
+    ni, fe = find_phase("Ni"), find_phase("Fe")
+    res = match_zone_axes(xy, centre, [ni, fe], camera_constant_px_A=K, image_shape=SHAPE)
+    assert res.candidates[0].phase == "Ni" and _family(ni, res.candidates[0].zone) == _family(ni, (1, 1, 0))
+    assert res.second.phase == "Fe" and _family(fe, res.second.zone) == _family(fe, (1, 1, 1))
+    orel = res.orientation_relationship
+    assert _plane_family(ni, orel.plane_1) == _plane_family(ni, (1, 1, 1))
+    assert _plane_family(fe, orel.plane_2) == _plane_family(fe, (1, 1, 0))
+    assert orel.plane_deviation_deg < 0.5
