@@ -351,3 +351,26 @@ def test_hand_built_kurdjumov_sachs_pair():
     assert _plane_family(ni, orel.plane_1) == _plane_family(ni, (1, 1, 1))
     assert _plane_family(fe, orel.plane_2) == _plane_family(fe, (1, 1, 0))
     assert orel.plane_deviation_deg < 0.5
+
+
+def test_second_lattice_and_findings_survive_a_session_file():
+    import json
+
+    from saedkit.core.workflow.session import _decode, _encode
+
+    ni, fe = find_phase("Ni"), find_phase("Fe")
+    _, t = simulate_spot_pattern(ni, (1, -1, 0), shape=SHAPE, camera_constant_px_A=300.0, rotation_deg=17,
+                                 tilt_mrad=8, tilt_azimuth_deg=60, second=SecondCrystal(fe, _ks_orientation()))
+    res = match_zone_axes(t.xy, t.centre_xy, [ni, fe], spots_intensity=t.snr, image_shape=SHAPE)
+    assert res.second is not None and res.candidates[0].tilt is not None
+    back = _decode(json.loads(json.dumps(_encode(res))))
+    assert back.to_dict() == res.to_dict()
+    # a record saved before these fields existed still loads (defaults)
+    old = _encode(res)
+    for key in ("second", "orientation_relationship"):
+        old["fields"].pop(key)
+    for cand in old["fields"]["candidates"]["__tuple__"]:
+        for key in ("holz", "tilt", "n_double_diffraction"):
+            cand["fields"].pop(key)
+    again = _decode(json.loads(json.dumps(old)))
+    assert again.second is None and again.candidates[0].tilt is None
