@@ -374,3 +374,18 @@ def test_second_lattice_and_findings_survive_a_session_file():
             cand["fields"].pop(key)
     again = _decode(json.loads(json.dumps(old)))
     assert again.second is None and again.candidates[0].tilt is None
+
+
+def test_superlattice_spots_are_named_when_nothing_matches():
+    # L1₂ ordering (Cu₃Au type) adds 100 and 110 superlattice spots to the fcc [001] net of 200 and 220
+    # (textbook, from memory): a square net of side 1/a, built by hand; Cu (disordered fcc) is the only
+    # candidate, so the full net matches nothing at the given K, but every second row does
+    a, K = 3.615, 300.0  # Cu, from memory
+    pts = [K / a * np.array([m, n]) for m in range(-4, 5) for n in range(-4, 5) if (m, n) != (0, 0)]
+    centre = np.array([511.0, 512.0])
+    xy = centre + np.array(pts) @ _rot2(8).T
+    cu = find_phase("Cu")
+    res = match_zone_axes(xy, centre, [cu], camera_constant_px_A=K, image_shape=SHAPE)
+    assert not res.candidates
+    text = " ".join(res.notes)
+    assert "superlattice" in text and "[0, 0, 1]" in text.replace("[0, 0, -1]", "[0, 0, 1]")
