@@ -51,4 +51,18 @@ def describe_candidates(match, *, top: int) -> list[str]:
                      f"{c.in_plane_rotation_deg:7.1f} {c.camera_constant_px_A:9.1f} {c.n_explained:4d}/{c.n_spots:<4d}")
     if not match.candidates:
         lines.append("   no candidate: " + "; ".join(match.notes))
+    else:
+        # what the best candidate found beyond the zero-order net: double diffraction, HOLZ ring, tilt
+        for note in match.candidates[0].notes[1:]:
+            lines.append("   " + note)
+    if match.second is not None:
+        s2 = match.second
+        lines.append(f"second lattice: {s2.phase} {format_indices(s2.zone, brackets='[]')}, "
+                     f"{s2.n_explained} spots, score {s2.score:.3f}")
+    orel = match.orientation_relationship
+    if orel is not None:
+        lines.append(f"orientation relationship: {format_indices(orel.plane_1)}{orel.phase_1} ∥ "
+                     f"{format_indices(orel.plane_2)}{orel.phase_2}, {format_indices(orel.direction_1, brackets='[]')}"
+                     f"{orel.phase_1} ∥ {format_indices(orel.direction_2, brackets='[]')}{orel.phase_2} "
+                     f"(planes {orel.plane_deviation_deg:.2f}° apart)")
     return lines

@@ -19,6 +19,7 @@ STABLE_NAMES = {
     "Ellipse", "CentreResult", "Spot", "RadialProfile", "RingPeak", "EllipseFit", "RingFit", "Calibration",
     "RingAssignment", "RingIndexing", "SavedCalibration", "EnteredCalibration", "Lattice2D", "IndexedSpot",
     "PredictedSpot", "ZoneCandidate", "MatchResult", "PhaseIdentification", "PhaseScore", "RingMatch",
+    "HolzRing", "ZoneTilt", "OrientationRelationship",
 }
 
 

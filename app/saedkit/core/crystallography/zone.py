@@ -94,3 +94,65 @@ def calculate_excitation_error_array(cell: UnitCell, uvw, hkl, *, wavelength_A: 
     # s = (k² − |k + g|²) / (2|k + g|) ≈ −(2k·g + g²)/(2k)
     kg = g + kvec
     return (k**2 - np.sum(kg * kg, axis=1)) / (2 * np.linalg.norm(kg, axis=1))
+
+
+def calculate_orientation_matrix(cell_a: UnitCell, plane_a, direction_a, cell_b: UnitCell, plane_b,
+                                 direction_b) -> np.ndarray:
+    """Rotation that makes plane (hkl)_b ∥ (hkl)_a and direction [uvw]_b ∥ [uvw]_a.
+
+    Returns the 3×3 matrix ``R`` that maps Cartesian vectors of crystal b
+    (its ``direct_basis`` frame) into the Cartesian frame of crystal a. The
+    direction should lie in the plane in each crystal (as in the usual
+    statements of an orientation relationship); when it does not, the
+    direction is made normal to the plane first.
+
+    Raises
+    ------
+    CrystalError
+        When a direction is parallel to its plane normal.
+    """
+    def triad(cell: UnitCell, hkl, uvw) -> np.ndarray:
+        n = cell.reciprocal_basis @ np.asarray(hkl, float)
+        d = cell.direct_basis @ np.asarray(uvw, float)
+        n = n / np.linalg.norm(n)
+        d = d - (d @ n) * n
+        if np.linalg.norm(d) < 1e-9:
+            raise CrystalError(f"direction {tuple(uvw)} is parallel to the normal of plane {tuple(hkl)}")
+        d = d / np.linalg.norm(d)
+        return np.column_stack([n, d, np.cross(n, d)])
+
+    return triad(cell_a, plane_a, direction_a) @ triad(cell_b, plane_b, direction_b).T
+
+
+def calculate_holz_radius_per_A(cell: UnitCell, uvw, *, wavelength_A: float, layer_spacing_per_A: float | None = None
+                                ) -> float:
+    """Radius |G| (Å⁻¹, in the zone plane) of the first-order Laue-zone ring of zone [uvw].
+
+    The Ewald sphere (radius k = 1/λ) cuts the reciprocal-lattice layer at
+    height ``H`` above the zero-order zone in a circle of radius
+    ``G = sqrt(2kH − H²) ≈ sqrt(2H/λ)``. ``H`` defaults to ``1/|[uvw]|``,
+    the inverse length of the direct-lattice vector u·a + v·b + w·c; a
+    centred cell whose first populated layer is the second one needs
+    ``layer_spacing_per_A`` given (see
+    :func:`calculate_holz_layer_spacing_per_A`).
+    """
+    H = layer_spacing_per_A if layer_spacing_per_A is not None else 1.0 / cell.calculate_direction_length_A(uvw)
+    k = 1.0 / wavelength_A
+    return float(np.sqrt(max(2 * k * H - H * H, 0.0)))
+
+
+def calculate_holz_layer_spacing_per_A(phase: Phase, uvw) -> float:
+    """Spacing H (Å⁻¹) between the zero-order zone and the first populated Laue zone of [uvw].
+
+    ``H = N/|[uvw]|`` with N the smallest ``|h·u| > 0`` that holds a
+    reflection allowed by the lattice centring (N = 1 for a primitive
+    lattice; fcc [011] has N = 2: a/2[011] is a lattice vector).
+    """
+    u = np.asarray(uvw, dtype=np.int64)
+    length = phase.cell.calculate_direction_length_A(u)
+    r = np.arange(-4, 5)
+    h = np.stack(np.meshgrid(r, r, r, indexing="ij"), -1).reshape(-1, 3)
+    layer = np.abs(h @ u)
+    ok = (layer > 0) & ~phase.is_centring_absent_array(h)
+    n = int(layer[ok].min()) if ok.any() else 1
+    return float(n / length)

@@ -66,7 +66,7 @@ def _index(v: np.ndarray, g1: np.ndarray, g2: np.ndarray):
     return mn_r.astype(int), res
 
 
-def _candidate_vectors(v: np.ndarray, max_spots: int = 30) -> np.ndarray:
+def _candidate_vectors(v: np.ndarray, max_spots: int = 30, max_vectors: int = 14) -> np.ndarray:
     order = np.argsort(np.linalg.norm(v, axis=1))[:max_spots]
     w = v[order]
     diffs = (w[:, None, :] - w[None, :, :]).reshape(-1, 2)
@@ -79,7 +79,7 @@ def _candidate_vectors(v: np.ndarray, max_spots: int = 30) -> np.ndarray:
     flip = (cand[:, 0] < 0) | ((cand[:, 0] == 0) & (cand[:, 1] < 0))
     cand[flip] *= -1
     cand = cand[np.argsort(np.linalg.norm(cand, axis=1))]
-    kept = np.empty((14, 2))
+    kept = np.empty((max_vectors, 2))
     n = 0
     for c in cand:
         tol = 0.04 * math.hypot(c[0], c[1]) + 0.5
@@ -123,6 +123,7 @@ def find_lattice_2d(
     tolerance_frac: float = 0.12,
     refine_centre: bool = True,
     camera_constant_px_A: float | None = None,
+    min_cell_area_px2: float | None = None,
 ) -> Lattice2D:
     """Find the plane lattice of a spot pattern and index every spot on it.
 
@@ -145,6 +146,10 @@ def find_lattice_2d(
         lattice origin); otherwise keep it fixed.
     camera_constant_px_A : float, optional
         Stored in the result so that it can report d1 and d2.
+    min_cell_area_px2 : float, optional
+        Consider only cells at least this large (ideal px²): the lattice of
+        one of two overlapping patterns (a twin) when their spots together
+        fill a common sub-cell.
 
     Returns
     -------
@@ -165,7 +170,7 @@ def find_lattice_2d(
     w = np.ones(len(p)) if weights is None else np.asarray(weights, float)
     Dinv = ellipse.inverse_matrix
     p_ideal = (p - c0) @ Dinv.T  # offsets relative to the rough centre, ideal frame
-    cands = _candidate_vectors(p_ideal)
+    cands = _candidate_vectors(p_ideal, max_vectors=14 if min_cell_area_px2 is None else 24)
     if len(cands) < 2:
         raise FitError("the spots do not span a plane lattice (too few distinct vectors)")
 
@@ -183,6 +188,8 @@ def find_lattice_2d(
             if cross < 0.2 * np.linalg.norm(a) * np.linalg.norm(b):  # nearly collinear
                 continue
             a_r, b_r, _ = reduce_basis_2d(a, b)
+            if min_cell_area_px2 is not None and abs(a_r[0] * b_r[1] - a_r[1] * b_r[0]) < min_cell_area_px2:
+                continue
             tol = tolerance_frac * np.linalg.norm(a_r)
             mn, res = _index(p_ideal, a_r, b_r)
             ok = (res < tol) & np.any(mn != 0, axis=1)

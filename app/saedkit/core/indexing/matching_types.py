@@ -8,7 +8,8 @@ import numpy as np
 
 from saedkit.core._validate import finite_or_none
 
-__all__ = ["Lattice2D", "IndexedSpot", "PredictedSpot", "ZoneCandidate", "MatchResult"]
+__all__ = ["Lattice2D", "IndexedSpot", "PredictedSpot", "HolzRing", "ZoneTilt", "OrientationRelationship",
+           "ZoneCandidate", "MatchResult"]
 
 
 @dataclass(frozen=True)
@@ -106,6 +107,79 @@ class PredictedSpot:
 
 
 @dataclass(frozen=True)
+class HolzRing:
+    """A higher-order Laue-zone ring found among the spots off the zero-order net.
+
+    The Ewald sphere cuts the first populated reciprocal-lattice layer above
+    the zero-order zone (spacing H along the zone axis) in a ring of radius
+    ``G = sqrt(2kH − H²) ≈ sqrt(2H/λ)``; the measured radius gives H, which
+    checks the zone and the cell (``H = N/|[uvw]|``).
+    """
+
+    radius_px: float
+    radius_sigma_px: float
+    n_spots: int
+    predicted_radius_px: float
+    layer_spacing_per_A: float  # measured H
+    predicted_layer_spacing_per_A: float
+    layer_spacing_error_pct: float  # (measured − predicted)/predicted
+
+    def to_dict(self) -> dict:
+        return {"radius_px": finite_or_none(self.radius_px), "radius_sigma_px": finite_or_none(self.radius_sigma_px),
+                "n_spots": self.n_spots, "predicted_radius_px": finite_or_none(self.predicted_radius_px),
+                "layer_spacing_per_A": finite_or_none(self.layer_spacing_per_A),
+                "predicted_layer_spacing_per_A": finite_or_none(self.predicted_layer_spacing_per_A),
+                "layer_spacing_error_pct": finite_or_none(self.layer_spacing_error_pct)}
+
+
+@dataclass(frozen=True)
+class ZoneTilt:
+    """How far the beam is off the zone axis, from the Laue circle of the excited spots.
+
+    The excited zero-order spots lie near a circle through the undiffracted
+    beam (the Laue circle); its centre is at ``k·sin τ`` from the pattern
+    centre, towards the side where the spots are bright, for a tilt τ.
+    """
+
+    laue_centre_xy: tuple[float, float]
+    tilt_mrad: float
+    tilt_deg: float
+    azimuth_deg: float  # image direction from the pattern centre to the Laue-circle centre
+    method: str  # "intensities" or "positions"
+
+    def to_dict(self) -> dict:
+        return {"laue_centre_px": [finite_or_none(v) for v in self.laue_centre_xy],
+                "tilt_mrad": finite_or_none(self.tilt_mrad), "tilt_deg": finite_or_none(self.tilt_deg),
+                "azimuth_deg": finite_or_none(self.azimuth_deg), "method": self.method}
+
+
+@dataclass(frozen=True)
+class OrientationRelationship:
+    """Parallel planes and directions of two lattices seen in one pattern.
+
+    ``(plane_1) ∥ (plane_2)`` are the pair of low-index reflections of the
+    two zero-order zones closest to parallel in the image (deviation
+    ``plane_deviation_deg``); ``[direction_1] ∥ [direction_2]`` are the two
+    zone axes (both along the beam).
+    """
+
+    phase_1: str
+    phase_2: str
+    plane_1: tuple[int, int, int]
+    plane_2: tuple[int, int, int]
+    direction_1: tuple[int, int, int]
+    direction_2: tuple[int, int, int]
+    plane_deviation_deg: float
+    rotation_deg: float  # in-plane angle from the first lattice's grid to the second's
+
+    def to_dict(self) -> dict:
+        return {"phase_1": self.phase_1, "phase_2": self.phase_2, "plane_1": list(self.plane_1),
+                "plane_2": list(self.plane_2), "direction_1": list(self.direction_1),
+                "direction_2": list(self.direction_2), "plane_deviation_deg": finite_or_none(self.plane_deviation_deg),
+                "rotation_deg": finite_or_none(self.rotation_deg)}
+
+
+@dataclass(frozen=True)
 class ZoneCandidate:
     """One explanation of a spot pattern: a phase seen along a zone axis."""
 
@@ -127,6 +201,9 @@ class ZoneCandidate:
     predicted: tuple[PredictedSpot, ...] = field(repr=False)
     basis_hkl: tuple[tuple[int, int, int], tuple[int, int, int]] = ((0, 0, 0), (0, 0, 0))
     notes: tuple[str, ...] = ()
+    holz: HolzRing | None = None  # a HOLZ ring among the spots this candidate leaves unexplained
+    tilt: ZoneTilt | None = None  # beam tilt off the zone axis (from the Laue circle)
+    n_double_diffraction: int = 0  # spots indexed as forbidden but reachable by double diffraction
 
     def to_dict(self) -> dict:
         return {
@@ -144,6 +221,9 @@ class ZoneCandidate:
             "spots": [s.to_dict() for s in self.spots],
             "predicted": [p.to_dict() for p in self.predicted],
             "notes": list(self.notes),
+            "holz": None if self.holz is None else self.holz.to_dict(),
+            "tilt": None if self.tilt is None else self.tilt.to_dict(),
+            "n_double_diffraction": self.n_double_diffraction,
         }
 
 
@@ -158,6 +238,8 @@ class MatchResult:
     phases: tuple[str, ...]
     tolerances: dict = field(default_factory=dict)
     notes: tuple[str, ...] = ()
+    second: ZoneCandidate | None = None  # a second lattice among the spots the best leaves unexplained
+    orientation_relationship: OrientationRelationship | None = None  # between best and second
 
     @property
     def best(self) -> ZoneCandidate | None:
@@ -170,4 +252,7 @@ class MatchResult:
             "lattice": None if self.lattice is None else self.lattice.to_dict(),
             "candidates": [c.to_dict() for c in self.candidates],
             "notes": list(self.notes),
+            "second": None if self.second is None else self.second.to_dict(),
+            "orientation_relationship": (None if self.orientation_relationship is None
+                                         else self.orientation_relationship.to_dict()),
         }

@@ -12,10 +12,19 @@ the exact zone-axis orientation; rings carry ``m·|F|²`` spread over their
 circumference. Dynamical effects are not modelled, but a spot pattern can
 add the kinematically forbidden reflections that double diffraction would
 bring back (Si 200 at [011]).
+
+Realistic effects (all off by default): a beam tilted off the zone axis by
+a fraction of a degree (the excitation error of each reflection then
+depends on the tilt and the foil thickness, so only the part of the zone
+near the Laue circle is bright), log-normal scrambling of the intensities
+(a stand-in for dynamical scattering), higher-order Laue-zone (HOLZ) spots
+and a second crystal (twin, second grain or precipitate) in a given
+orientation relative to the first.
 """
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
@@ -28,9 +37,30 @@ from saedkit.core.errors import InputError
 from saedkit.core.optics import calculate_wavelength_A
 from saedkit.core.simulation.render import BeamStop, Detector, render_pattern
 from saedkit.core.crystallography.structure_factors import calculate_reflections, calculate_ring_families
-from saedkit.core.crystallography.zone import calculate_excitation_error_array, calculate_pattern_offsets_array
+from saedkit.core.crystallography.zone import (
+    calculate_excitation_error_array,
+    calculate_pattern_offsets_array,
+    calculate_zone_frame,
+    rotation_matrix_2d,
+)
 
-__all__ = ["SpotPatternTruth", "RingPatternTruth", "simulate_spot_pattern", "simulate_ring_pattern"]
+__all__ = ["SpotPatternTruth", "RingPatternTruth", "SecondCrystal", "simulate_spot_pattern", "simulate_ring_pattern"]
+
+
+@dataclass(frozen=True)
+class SecondCrystal:
+    """A second crystal in the beam: a twin, a second grain or a precipitate.
+
+    ``orientation`` maps Cartesian vectors of the second crystal's frame
+    (its ``cell.direct_basis`` frame) to the first crystal's frame: a
+    reciprocal vector ``g2`` of the second crystal is ``orientation @ g2``
+    in the first crystal's frame. Its spots are those near the Ewald sphere
+    of the first crystal's beam, with ``relative_intensity`` scaling them.
+    """
+
+    phase: Phase
+    orientation: np.ndarray = field(repr=False)
+    relative_intensity: float = 0.6
 
 
 @dataclass(frozen=True)
@@ -50,15 +80,24 @@ class SpotPatternTruth:
     snr: np.ndarray = field(repr=False)
     forbidden: np.ndarray = field(repr=False)  # bool: kinematically forbidden, added as double diffraction
     extra: np.ndarray = field(repr=False)  # bool: spurious spot (dust, second grain)
+    laue_zone: np.ndarray | None = field(default=None, repr=False)  # (N,) int: h·u of each spot (0 = ZOLZ)
+    second: np.ndarray | None = field(default=None, repr=False)  # (N,) bool: spot of the second crystal
+    tilt_mrad: float = 0.0
+    tilt_azimuth_deg: float = 0.0  # image direction from the centre to the Laue-circle centre
+    laue_circle_centre_xy: tuple[float, float] | None = None
 
     def to_dict(self) -> dict:
         return {
             "phase": self.phase, "zone": list(self.zone), "camera_constant_px_A": self.camera_constant_px_A,
             "rotation_deg": self.rotation_deg, "centre_px": list(self.centre_xy), "ellipse": self.ellipse.to_dict(),
-            "voltage_kv": self.voltage_kv,
+            "voltage_kv": self.voltage_kv, "tilt_mrad": self.tilt_mrad, "tilt_azimuth_deg": self.tilt_azimuth_deg,
+            "laue_circle_centre_px": None if self.laue_circle_centre_xy is None else list(self.laue_circle_centre_xy),
             "spots": [{"hkl": [int(v) for v in h], "x": float(p[0]), "y": float(p[1]), "d_A": float(d),
-                       "snr": float(s), "forbidden": bool(f), "extra": bool(e)}
-                      for h, p, d, s, f, e in zip(self.hkl, self.xy, self.d_A, self.snr, self.forbidden, self.extra)],
+                       "snr": float(s), "forbidden": bool(f), "extra": bool(e),
+                       "laue_zone": 0 if self.laue_zone is None else int(self.laue_zone[i]),
+                       "second": False if self.second is None else bool(self.second[i])}
+                      for i, (h, p, d, s, f, e) in enumerate(zip(self.hkl, self.xy, self.d_A, self.snr, self.forbidden,
+                                                                 self.extra))],
         }
 
 
@@ -116,6 +155,12 @@ def simulate_spot_pattern(
     beam_stop: BeamStop | None = None,
     detector: Detector = Detector(),
     rng: np.random.Generator | None = None,
+    tilt_mrad: float = 0.0,
+    tilt_azimuth_deg: float = 0.0,
+    laue_zones: int = 0,
+    holz_relative_intensity: float = 0.15,
+    intensity_scatter: float = 0.0,
+    second: SecondCrystal | None = None,
 ) -> tuple[np.ndarray, SpotPatternTruth]:
     """Simulate a zero-order Laue-zone spot pattern of ``phase`` along ``zone``.
 
@@ -148,6 +193,24 @@ def simulate_spot_pattern(
         Remove this many random drawn spots; add this many spurious spots.
     beam_stop, detector, rng
         Passed to :func:`~saedkit.core.simulation.render.render_pattern`.
+    tilt_mrad, tilt_azimuth_deg : float
+        Beam tilt away from the zone axis, and the image direction (degrees
+        from +x towards +y) from the pattern centre to the centre of the
+        Laue circle (the side of the pattern that stays bright). The
+        excitation errors follow the tilted Ewald sphere; positions stay
+        the projection on the zone plane (small tilts).
+    laue_zones : int
+        Also draw the reflections of the first ``laue_zones`` populated
+        higher-order Laue zones (HOLZ, ``h·u ≠ 0``) that the Ewald sphere
+        excites, the brightest at ``holz_relative_intensity`` of the
+        strongest ZOLZ spot (high-angle structure factors are small; the
+        ring shows on a detector's log scale).
+    intensity_scatter : float
+        Standard deviation of ``ln I``: each spot's intensity is multiplied
+        by a log-normal factor (dynamical scattering scrambles intensities).
+        Uses ``rng`` (or a fixed seed).
+    second : SecondCrystal, optional
+        A second crystal whose excited reflections are drawn too.
 
     Returns
     -------
@@ -159,10 +222,26 @@ def simulate_spot_pattern(
     rows, cols = shape
     c = np.asarray(centre_xy if centre_xy is not None else _default_centre(shape, rng), float)
     r_max = np.hypot(max(c[0], cols - c[0]), max(c[1], rows - c[1]))
-    table = calculate_reflections(phase, g_max_per_A=r_max / K, voltage_kv=voltage_kv)
-    zolz = table.select(table.hkl @ np.array(uvw) == 0)
     lam = calculate_wavelength_A(voltage_kv)
-    s = calculate_excitation_error_array(phase.cell, uvw, zolz.hkl, wavelength_A=lam) if len(zolz) else np.zeros(0)
+    e1, e2, uhat = calculate_zone_frame(phase.cell, uvw)
+    tilt = float(tilt_mrad) * 1e-3
+    # the Laue-circle centre lies at −k·sin(τ)·n̂ in the zone plane: n̂ points away from the image
+    # direction tilt_azimuth_deg (mapped back through the in-plane rotation)
+    q_dir = rotation_matrix_2d(-rotation_deg) @ np.array([math.cos(math.radians(tilt_azimuth_deg)),
+                                                          math.sin(math.radians(tilt_azimuth_deg))])
+    n_hat = -(q_dir[0] * e1 + q_dir[1] * e2)
+    k_hat = math.cos(tilt) * uhat + math.sin(tilt) * n_hat
+    g_lim = r_max / K
+    if laue_zones:
+        # HOLZ rings lie at |g| ≈ sqrt(2H/λ): the reflection list must reach past the image
+        g_lim = math.hypot(g_lim, 3.0 * laue_zones / phase.cell.calculate_direction_length_A(uvw))
+    table = calculate_reflections(phase, g_max_per_A=g_lim, voltage_kv=voltage_kv)
+    layer_all = table.hkl @ np.array(uvw)
+    zolz = table.select(layer_all == 0)
+    if tilt == 0.0:
+        s = calculate_excitation_error_array(phase.cell, uvw, zolz.hkl, wavelength_A=lam) if len(zolz) else np.zeros(0)
+    else:
+        s = _excitation_error_array(zolz.hkl @ phase.cell.reciprocal_basis.T, k_hat, lam)
     relrod = 1.0 / (1.0 + (np.pi * thickness_A * s) ** 2)
     inten = zolz.intensity * relrod
     allowed = zolz.allowed.copy()
@@ -181,20 +260,67 @@ def simulate_spot_pattern(
             if best > 0 and not phase.is_centring_absent_array(h)[0]:
                 inten[i] = 0.3 * best
                 forbidden[i] = True
-    draw = (allowed | forbidden) & (inten >= min_relative_intensity * (inten[allowed].max() if allowed.any() else 1))
+    i_ref = inten[allowed].max() if allowed.any() else 1.0
+    draw = (allowed | forbidden) & (inten >= min_relative_intensity * i_ref)
     hkl = zolz.hkl[draw]
     inten = inten[draw]
     forbidden = forbidden[draw]
+    layer = np.zeros(len(hkl), int)
+    is_second = np.zeros(len(hkl), bool)
     offsets = calculate_pattern_offsets_array(phase.cell, uvw, hkl, camera_constant_px_A=K, rotation_deg=rotation_deg)
+    if laue_zones:
+        # a centred cell can leave the layers h·u = ±1 empty: count populated layers only
+        populated = np.abs(layer_all[(layer_all != 0) & table.allowed])
+        step = int(populated.min()) if len(populated) else 1
+        holz = table.select((layer_all != 0) & (np.abs(layer_all) <= int(laue_zones) * step) & table.allowed)
+        if len(holz):
+            sh = _excitation_error_array(holz.hkl @ phase.cell.reciprocal_basis.T, k_hat, lam)
+            ih = holz.intensity / (1.0 + (np.pi * thickness_A * sh) ** 2)
+            # only the central maximum of the shape function (|s| < 1/t; the Lorentzian tail of the
+            # relrod factor overstates far low-angle reflections); high-angle |F|² is small, so the
+            # brightest HOLZ spot is drawn at holz_relative_intensity
+            keep = (np.abs(sh) < 1.0 / thickness_A)
+            keep &= ih >= 0.05 * (ih[keep].max() if keep.any() else 1.0)
+            holz = holz.select(keep)
+            ih = ih[keep]
+            keep = np.ones(len(ih), bool)
+            hkl = np.vstack([hkl, holz.hkl])
+            inten = np.concatenate([inten, ih[keep] / ih[keep].max() * i_ref * float(holz_relative_intensity)])
+            forbidden = np.concatenate([forbidden, np.zeros(len(holz), bool)])
+            layer = np.concatenate([layer, holz.hkl @ np.array(uvw)])
+            is_second = np.concatenate([is_second, np.zeros(len(holz), bool)])
+            offsets = np.vstack([offsets, calculate_pattern_offsets_array(
+                phase.cell, uvw, holz.hkl, camera_constant_px_A=K, rotation_deg=rotation_deg)])
+    if second is not None:
+        R12 = np.asarray(second.orientation, float)
+        t2 = calculate_reflections(second.phase, g_max_per_A=r_max / K, voltage_kv=voltage_kv)
+        t2 = t2.select(t2.allowed)
+        g2 = (t2.hkl @ second.phase.cell.reciprocal_basis.T) @ R12.T  # in the first crystal's frame
+        s2 = _excitation_error_array(g2, k_hat, lam)
+        i2 = t2.intensity / (1.0 + (np.pi * thickness_A * s2) ** 2)
+        keep = i2 >= min_relative_intensity * float(i2.max() if len(i2) else 1.0)
+        i2 = i2[keep] / (i2[keep].max() if keep.any() else 1.0) * i_ref * float(second.relative_intensity)
+        q2 = np.stack([g2[keep] @ e1, g2[keep] @ e2], axis=1) * K
+        hkl = np.vstack([hkl, t2.hkl[keep]])
+        inten = np.concatenate([inten, i2])
+        forbidden = np.concatenate([forbidden, np.zeros(int(keep.sum()), bool)])
+        layer = np.concatenate([layer, np.zeros(int(keep.sum()), int)])
+        is_second = np.concatenate([is_second, np.ones(int(keep.sum()), bool)])
+        offsets = np.vstack([offsets, q2 @ rotation_matrix_2d(rotation_deg).T])
+    if intensity_scatter:
+        scr = rng if rng is not None else np.random.default_rng(1)
+        inten = inten * np.exp(scr.normal(0.0, float(intensity_scatter), len(inten)))
     obs = c + ellipse.distort_array(offsets) if len(offsets) else np.zeros((0, 2))
     margin = 4 * spot_sigma_px
     inside = (obs[:, 0] > margin) & (obs[:, 0] < cols - 1 - margin) & (obs[:, 1] > margin) & (obs[:, 1] < rows - 1 - margin)
     hkl, inten, forbidden, offsets = hkl[inside], inten[inside], forbidden[inside], offsets[inside]
+    layer, is_second = layer[inside], is_second[inside]
     gen = rng if rng is not None else np.random.default_rng(0)
     if n_missing and len(hkl) > n_missing:
         keep = np.ones(len(hkl), bool)
         keep[gen.choice(len(hkl), n_missing, replace=False)] = False
         hkl, inten, forbidden, offsets = hkl[keep], inten[keep], forbidden[keep], offsets[keep]
+        layer, is_second = layer[keep], is_second[keep]
     extra = np.zeros(len(hkl), bool)
     if n_extra:
         ex = np.column_stack([gen.uniform(margin, cols - 1 - margin, n_extra),
@@ -204,6 +330,8 @@ def simulate_spot_pattern(
         hkl = np.vstack([hkl, np.zeros((n_extra, 3), int)])
         forbidden = np.concatenate([forbidden, np.zeros(n_extra, bool)])
         extra = np.concatenate([extra, np.ones(n_extra, bool)])
+        layer = np.concatenate([layer, np.zeros(n_extra, int)])
+        is_second = np.concatenate([is_second, np.zeros(n_extra, bool)])
     peaks = peak_counts * inten / (inten.max() if len(inten) else 1.0)
     image, rt = render_pattern(
         shape, c, spot_offsets_xy=offsets, spot_intensity=peaks, spot_sigma_px=spot_sigma_px,
@@ -211,8 +339,17 @@ def simulate_spot_pattern(
         detector=detector, rng=rng,
     )
     d = np.where(extra, np.nan, 1.0 / np.maximum(phase.cell.calculate_g_array(np.where(extra[:, None], 1, hkl)), 1e-12)) if len(hkl) else np.zeros(0)
+    if second is not None and is_second.any():
+        d[is_second] = 1.0 / second.phase.cell.calculate_g_array(hkl[is_second])
+    laue_xy = None
+    if tilt:
+        q_c = -math.sin(tilt) / lam * np.array([n_hat @ e1, n_hat @ e2]) * K
+        laue_xy_v = c + ellipse.distort_array((rotation_matrix_2d(rotation_deg) @ q_c)[None, :])[0]
+        laue_xy = (float(laue_xy_v[0]), float(laue_xy_v[1]))
     truth = SpotPatternTruth(phase.name, uvw, K, float(rotation_deg), (float(c[0]), float(c[1])), ellipse,
-                             float(voltage_kv), hkl, rt.spot_xy, d, rt.spot_snr, forbidden, extra)
+                             float(voltage_kv), hkl, rt.spot_xy, d, rt.spot_snr, forbidden, extra,
+                             laue_zone=layer, second=is_second, tilt_mrad=float(tilt_mrad),
+                             tilt_azimuth_deg=float(tilt_azimuth_deg), laue_circle_centre_xy=laue_xy)
     return image, truth
 
 
@@ -267,6 +404,13 @@ def _ring_extra_model(shape, c, ellipse, R, power, *, ring_width_px, spots_per_r
             weight *= 2 * np.pi / (2 * texture_arcs * np.sqrt(2 * np.pi) * sig)
         model[band] += h * weight * np.exp(-((r_ideal[band] - rad) ** 2) / (2 * s * s))
     return model
+
+
+def _excitation_error_array(g_cart: np.ndarray, k_hat: np.ndarray, wavelength_A: float) -> np.ndarray:
+    """Excitation error s_g (Å⁻¹) of Cartesian reciprocal vectors for a beam along ``k_hat``."""
+    k = 1.0 / wavelength_A
+    kg = np.atleast_2d(g_cart) + k * k_hat
+    return (k**2 - np.sum(kg * kg, axis=1)) / (2 * np.linalg.norm(kg, axis=1))
 
 
 def simulate_ring_pattern(

@@ -105,6 +105,7 @@ def analyse_spot_pattern(
             camera_constant_sigma_px_A=K_sig, ellipse=ellipse, voltage_kv=kv, d_tolerance_pct=d_tolerance_pct,
             angle_tolerance_deg=angle_tolerance_deg, max_index=max_index, top=top, spots_sigma_px=sig,
             image_shape=data.shape, mask=mask, should_stop=should_stop,
+            spots_intensity=np.array([s.intensity for s in spots], float),
         )
         lat = match.lattice
         if lat is not None and np.all(np.isfinite(lat.centre_sigma_px)):
