@@ -330,7 +330,7 @@ def _run_distributed(tasks, cluster, workers, take) -> bool:
     own_cluster = None
     if cluster is None:
         own_cluster = LocalCluster(n_workers=int(workers or os.cpu_count() or 1), threads_per_worker=1,
-                                   processes=True, dashboard_address=None)
+                                   processes=True, dashboard_address=":0")
         client = Client(own_cluster)
     elif isinstance(cluster, str):
         client = Client(cluster)

@@ -82,7 +82,7 @@ def test_series_command_on_a_running_scheduler(scan_h5, tmp_path, capsys):
     local = tmp_path / "local"
     assert main(["series", f"{scan_h5}:/entry/data", *ARGS, "--out", str(local), "--no-figures", "--json"]) == 0
     expected = json.loads(capsys.readouterr().out)
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=False, dashboard_address=None) as cluster:
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=False, dashboard_address=":0") as cluster:
         out = tmp_path / "remote"
         assert main(["series", f"{scan_h5}:/entry/data", *ARGS, "--out", str(out), "--no-figures", "--json",
                      "--cluster", cluster.scheduler_address]) == 0

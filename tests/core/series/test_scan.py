@@ -195,7 +195,7 @@ def test_a_distributed_cluster_gives_the_same_results(small, tmp_path):
     from distributed import Client, LocalCluster
 
     path, whole = small
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=False, dashboard_address=None) as cluster, \
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=False, dashboard_address=":0") as cluster, \
             Client(cluster) as client:
         got = run_series(path, options=_options(), out_dir=tmp_path / "c", frames_per_chunk=3, cluster=client,
                          write_figures=False)
