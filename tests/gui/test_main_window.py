@@ -89,7 +89,6 @@ def test_find_spots_and_search_si_011(window, open_pattern, si_file):
 
 
 def test_calibrate_on_a_gold_ring_pattern(window, open_pattern, tmp_path):
-    pytest.importorskip("saedkit.core.calibration.calibrate")
     k_true = 300.0
     img, truth = simulate_ring_pattern(find_phase("Au"), shape=(512, 512), camera_constant_px_A=k_true,
                                        beam_stop=BeamStop(angle_deg=70.0), rng=np.random.default_rng(8))
@@ -308,7 +307,6 @@ def test_gui_command_imports_no_qt_until_it_runs():
 
 
 def test_export_report_writes_the_bundle(window, open_pattern, si_file, tmp_path, monkeypatch):
-    pytest.importorskip("saedkit.report")
     path, truth = si_file
     s = open_pattern(path)
     s.set_centre(manual_centre(*truth.centre_xy, sigma_px=0.3))

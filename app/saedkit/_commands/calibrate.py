@@ -60,8 +60,9 @@ def register(sub) -> None:
     form.add_argument("--exact", action="store_true",
                       help="use the exact camera equation R = L·tan 2θ (the default; kept for scripts)")
     form.add_argument("--small-angle", action="store_true",
-                      help="use the small-angle form R = λL/d instead of the exact R = L·tan 2θ "
-                      "(they differ by 2×10⁻⁵ to 4×10⁻³ relative at 60–300 kV, d = 3–0.5 Å)")
+                      help="ring standards: use the small-angle form R = λL/d instead of the exact "
+                      "R = L·tan 2θ (they differ by 2×10⁻⁵ to 4×10⁻³ relative at 60–300 kV, d = 3–0.5 Å); "
+                      "--spots always uses the small-angle form")
     p.add_argument("--spots", action="store_true",
                    help="the image is a single-crystal spot pattern of the standard (e.g. Si), not a ring pattern")
     p.add_argument("--zone", type=int, nargs=3, metavar=("U", "V", "W"),

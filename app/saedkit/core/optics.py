@@ -15,7 +15,8 @@ made and used with the same form absorbs part of it: what is left in a
 measured d is the difference of the error at the specimen's spacing and at
 the standard's. The functions here take
 the small-angle form unless told ``exact=True``; the command line uses the
-exact form by default (``calibrate --small-angle`` turns it off).
+exact form by default on ring standards (``calibrate --small-angle`` turns
+it off).
 """
 
 from __future__ import annotations

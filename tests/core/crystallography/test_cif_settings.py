@@ -154,3 +154,12 @@ def test_typed_in_phase_is_unchanged():
     # make_phase takes the symbol as given (origin choice 2 for a bare symbol, documented)
     si = make_phase("Si", (A_SI,) * 3 + (90,) * 3, "F d -3 m", [Site("Si", 0.125, 0.125, 0.125, 1, 0)])
     assert si.notes == () and len(si.atom_positions[0]) == 8
+
+
+@pytest.mark.parametrize("symbol, origin", [("F d -3 m S", 1), ("F d -3 m Z", 2)])
+def test_database_origin_suffix_is_understood(symbol, origin):
+    # some databases write the origin as a trailing S (origin choice 1) or Z (origin at -3m, choice 2)
+    xyz = "0 0 0" if origin == 1 else "0.125 0.125 0.125"
+    si = read_phase_cif("t.cif", text=_si_cif(xyz, symbol=symbol))
+    assert si.space_group.setting == f"F d -3 m:{origin}" and si.notes == ()
+    assert len(si.atom_positions[0]) == 8

@@ -97,15 +97,38 @@ def test_indexed_spots_carry_truth_hkl_up_to_symmetry():
     assert best.zone_four_index is None and any("180°" in n for n in best.notes)
 
 
+def _diamond_allowed(h, k, l):
+    # diamond cubic (International Tables Vol. A, Fd-3m 8a): unmixed, and h + k + l = 4n when all even
+    return len({h % 2, k % 2, l % 2}) == 1 and (h % 2 == 1 or (h + k + l) % 4 == 0)
+
+
 def test_double_diffraction_spots_are_flagged_not_counted_against():
-    # Si [011]: 200 is kinematically forbidden but appears by double diffraction (111 + 1̄1̄1 type sums;
-    # Williams & Carter ch. 13, from memory)
-    ph, K, t, xy, centre = _simulated_spots("Si", (0, 1, 1), 3, n_extra=0, n_missing=0)
-    assert t.forbidden.any()
-    best = match_zone_axes(xy, centre, [ph], camera_constant_px_A=K, image_shape=SHAPE).candidates[0]
-    flagged = [s for s in best.spots if s.forbidden]
-    assert len(flagged) == int(t.forbidden.sum())
-    assert all(np.all(np.array(s.hkl) % 2 == 0) for s in flagged)
+    # Si [011], spots placed by hand (not by the simulator): the kinematic ZOLZ of the diamond rule,
+    # plus the forbidden reflections that double diffraction puts there, e.g. 200 = 11̄1 + 111̄ and
+    # 2̄00 (Williams & Carter ch. 13; REFERENCES.md). Which spots are forbidden is decided here by
+    # the textbook rule, not by the simulator's flags.
+    from tests.core.indexing.test_hand_placed_patterns import CENTRE, _hand_placed
+
+    si = find_phase("Si")
+    K = 320.0
+    _, allowed = _hand_placed(si.cell.parameters, _diamond_allowed, (0, 1, 1), d_min_A=1.0, K=K, rotation_deg=0)
+    sums = {tuple(int(v) for v in np.add(p, q)) for p in allowed for q in allowed}
+
+    def seen(h, k, l):  # allowed, or forbidden but the sum of two allowed reflections of the zone
+        return _diamond_allowed(h, k, l) or (h, k, l) in sums
+
+    xy, hkls = _hand_placed(si.cell.parameters, seen, (0, 1, 1), d_min_A=1.0, K=K, rotation_deg=23.0)
+    placed_dd = np.array([not _diamond_allowed(*h) for h in hkls])
+    assert {(2, 0, 0), (-2, 0, 0)} <= {h for h, f in zip(hkls, placed_dd) if f}
+    assert (1, -1, 1) in allowed and (1, 1, -1) in allowed  # 200 = 11̄1 + 111̄
+    xy = xy + np.random.default_rng(3).normal(0, 0.2, xy.shape)
+    best = match_zone_axes(xy, CENTRE, [si], camera_constant_px_A=K, image_shape=SHAPE).candidates[0]
+    assert _family(si, best.zone) == _family(si, (0, 1, 1))
+    flagged = np.array([s.forbidden for s in best.spots])
+    assert np.array_equal(flagged, placed_dd)  # spots come back in input order
+    for s in best.spots:
+        if s.forbidden:  # forbidden by the diamond rule: all even with h + k + l = 4n + 2
+            assert not _diamond_allowed(*s.hkl) and all(v % 2 == 0 for v in s.hkl)
     assert best.fraction_explained == 1.0
 
 
@@ -129,7 +152,7 @@ def _basis_ratio_angle(name, zone):
         ("Au", (0, 0, 1), 1.0, 90.0),       # fcc [001]: 200, 020
         ("Au", (0, 1, 1), 1.0, 70.53),      # fcc [011]: 11̄1, 1̄1̄1
         ("Au", (1, 1, 1), 1.0, 60.0),       # fcc [111]: 2̄20, 20̄2
-        ("Au", (1, 1, 2), 1.633, 90.0),     # fcc [112]: 11̄1, 2̄20
+        ("Au", (1, 1, 2), 1.633, 90.0),     # fcc [112]: 111̄, 2̄20
         ("Fe", (0, 0, 1), 1.0, 90.0),       # bcc [001]: 110, 1̄10
         ("Fe", (0, 1, 1), 1.4142, 90.0),    # bcc [011]: 01̄1, 200
         ("Fe", (1, 1, 1), 1.0, 60.0),       # bcc [111]: 1̄10, 101̄

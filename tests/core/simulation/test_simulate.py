@@ -37,10 +37,21 @@ def test_double_diffraction_adds_only_forbidden_non_centring_spots():
     _, t0 = simulate_spot_pattern(si, (0, 1, 1), camera_constant_px_A=320, rng=None)
     _, t1 = simulate_spot_pattern(si, (0, 1, 1), camera_constant_px_A=320, double_diffraction=True, rng=None)
     added = {tuple(h) for h in t1.hkl[t1.forbidden].tolist()}
-    # Si [011]: 200 appears by double diffraction (111 + 1̄1̄1... sums; Williams & Carter ch. 13, from memory)
+    kinematic = {tuple(h) for h in t0.hkl.tolist()}
+    # Si [011]: 200 appears by double diffraction, 200 = 11̄1 + 111̄ (Williams & Carter ch. 13, from memory)
+    assert (1, -1, 1) in kinematic and (1, 1, -1) in kinematic
     assert (2, 0, 0) in added and (-2, 0, 0) in added
     assert not t0.forbidden.any()
-    assert all(np.all(np.array(h) % 2 == 0) or np.all(np.array(h) % 2 == 1) for h in added)  # never fcc-centring absent
+
+    def diamond_allowed(h, k, l):  # International Tables Vol. A, Fd-3m 8a
+        return len({h % 2, k % 2, l % 2}) == 1 and (h % 2 == 1 or (h + k + l) % 4 == 0)
+
+    # every added spot is forbidden by the diamond rule but fcc-centring allowed (all even,
+    # h + k + l = 4n + 2), lies in the zone, and is the sum of two kinematic reflections of it
+    for h in added:
+        assert not diamond_allowed(*h) and all(v % 2 == 0 for v in h) and h[1] + h[2] == 0, h
+        assert any(tuple(np.subtract(h, p)) in kinematic for p in kinematic), h
+    assert all(diamond_allowed(*h) for h in kinematic)
 
 
 def test_ring_pattern_truth_gold():

@@ -83,7 +83,7 @@ def find_space_group(symbol_or_number: str | int) -> SpaceGroupData:
             raise CrystalError(f"space group number must be 1 to 230, got {symbol_or_number!r}")
         symbol = sg.hm
     else:
-        symbol = str(symbol_or_number).strip()
+        symbol = _normalise_symbol(str(symbol_or_number))
         if not symbol:
             raise CrystalError("space group symbol is empty")
     sg = None
@@ -98,6 +98,18 @@ def find_space_group(symbol_or_number: str | int) -> SpaceGroupData:
     return _from_gemmi(sg)
 
 
+def _normalise_symbol(text: str) -> str:
+    """A symbol with its origin written as some databases do (a trailing ``S`` for origin choice 1,
+    ``Z`` for the origin at the centre of symmetry, i.e. 2) rewritten as ``:1``/``:2``."""
+    symbol = text.strip()
+    m = re.fullmatch(r"(.*\S)\s+([SZ])", symbol)
+    if m and ":" not in symbol:
+        base, suffix = m.group(1), {"S": ":1", "Z": ":2"}[m.group(2)]
+        if gemmi.find_spacegroup_by_name(base + suffix) is not None and gemmi.find_spacegroup_by_name(base + ":1"):
+            return base + suffix
+    return symbol
+
+
 def find_setting_choices(symbol_or_number: str | int) -> tuple[SpaceGroupData, ...]:
     """The settings a bare space-group symbol leaves open, or ``()`` when it names one.
 
@@ -107,7 +119,7 @@ def find_setting_choices(symbol_or_number: str | int) -> tuple[SpaceGroupData, .
     hexagonal and the rhombohedral axes (H first). A symbol that already
     names its setting, or a group with only one, returns ``()``.
     """
-    text = str(symbol_or_number).strip()
+    text = _normalise_symbol(str(symbol_or_number))
     if text.isdigit():
         sg = gemmi.find_spacegroup_by_number(int(text)) if 1 <= int(text) <= 230 else None
         if sg is None:

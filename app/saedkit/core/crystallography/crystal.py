@@ -494,7 +494,7 @@ def _setting_problems(cell: UnitCell, sites: tuple[Site, ...], sg: SpaceGroupDat
         elif max(ratios.values()) > 1.02 * min(ratios.values()):
             got = ", ".join(f"{counts[el]:g} {el}" for el in formula)
             problems.append(f"the cell holds {got}, not in the proportions of {content.formula!r}")
-    if 1 < n_atoms <= 2000:
+    if 1 < n_atoms <= 800:  # pairwise distances; larger cells skip this check
         f = np.array(xyz)
         occ = np.array([sites[i].occupancy for i in owner])
         diff = f[:, None, :] - f[None, :, :]
