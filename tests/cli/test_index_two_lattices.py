@@ -45,3 +45,22 @@ def test_index_reports_the_second_lattice_and_its_orientation_relationship(tmp_p
     assert main(["index", str(p), "--phase", "Ni", "--phase", "Fe", "--camera-constant", "300"]) == 0
     out = capsys.readouterr().out
     assert "second lattice: " in out and "orientation relationship:" in out and "∥" in out
+
+
+def test_index_a_tilted_dynamical_image(tmp_path, capsys):
+    # an image tilted 0.6° off Ni [011] with scrambled intensities: detection, then the zone from positions
+    # and the tilt from the detected spots' intensities (truth: the simulator's inputs)
+    ni = find_phase("Ni")
+    img, _ = simulate_spot_pattern(ni, (0, 1, 1), shape=(640, 640), camera_constant_px_A=300.0, rotation_deg=40,
+                                   tilt_mrad=10.4, tilt_azimuth_deg=15, intensity_scatter=0.7, thickness_A=500,
+                                   rng=np.random.default_rng(0))
+    p = tmp_path / "tilted.tif"
+    write_tiff(p, img, voltage_kv=200.0, pixel_size_um=30.0)
+    assert main(["index", str(p), "--phase", "Ni", "--json"]) == 0
+    best = json.loads(capsys.readouterr().out)["candidates"][0]
+    fam = tuple(canonical_indices(ni.calculate_equivalent_directions(best["zone"])))
+    assert fam == tuple(canonical_indices(ni.calculate_equivalent_directions((0, 1, 1))))
+    assert abs(best["camera_constant_px_A"] / 300.0 - 1) < 0.01
+    assert best["tilt"]["method"] == "intensities"
+    assert abs((best["tilt"]["azimuth_deg"] - 15 + 180) % 360 - 180) < 30
+    assert 5 < best["tilt"]["tilt_mrad"] < 16

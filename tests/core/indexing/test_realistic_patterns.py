@@ -389,3 +389,19 @@ def test_superlattice_spots_are_named_when_nothing_matches():
     assert not res.candidates
     text = " ".join(res.notes)
     assert "superlattice" in text and "[0, 0, 1]" in text.replace("[0, 0, -1]", "[0, 0, 1]")
+
+
+def test_simulated_tilt_brightens_the_laue_circle_side():
+    # the simulator's tilt input, checked in closed form: Laue-circle centre at K·sin τ/λ from the pattern
+    # centre along the given azimuth, and the drawn spots on that side
+    ph = find_phase("Ni")
+    K, tau_mrad, az = 320.0, 15.0, 250.0
+    _, t = simulate_spot_pattern(ph, (0, 0, 1), shape=SHAPE, camera_constant_px_A=K, rotation_deg=33,
+                                 tilt_mrad=tau_mrad, tilt_azimuth_deg=az, thickness_A=500)
+    off = np.array(t.laue_circle_centre_xy) - t.centre_xy
+    assert np.hypot(*off) == pytest.approx(K * math.sin(tau_mrad * 1e-3) / calculate_wavelength_A(200.0), rel=1e-6)
+    assert math.degrees(math.atan2(off[1], off[0])) % 360 == pytest.approx(az, abs=1e-6)
+    v = t.xy - t.centre_xy
+    w = t.snr / t.snr.sum()
+    mean_dir = math.degrees(math.atan2(w @ v[:, 1], w @ v[:, 0])) % 360
+    assert abs((mean_dir - az + 180) % 360 - 180) < 30

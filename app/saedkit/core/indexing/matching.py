@@ -309,7 +309,7 @@ def match_zone_axes(
     if candidates:
         second = _find_second_lattice(p, candidates[0], lattice, K_given=K_given, common=common)
         if second is not None:
-            orel = _orientation_relationship(phases, candidates[0], second)
+            orel = _orientation_relationship(candidates[0], second, lattice.centre_xy)
             notes.append(f"a second lattice ({second.phase} {list(second.zone)}) explains {second.n_explained} of the "
                          "spots the first leaves unexplained (twin, second grain or precipitate)")
     else:
@@ -733,10 +733,11 @@ def _find_second_lattice(p, best: ZoneCandidate, lattice: Lattice2D, *, K_given,
     return cands[0]
 
 
-def _orientation_relationship(phases, a: ZoneCandidate, b: ZoneCandidate) -> OrientationRelationship | None:
+def _orientation_relationship(a: ZoneCandidate, b: ZoneCandidate, centre_xy) -> OrientationRelationship | None:
     """Parallel planes (the closest-to-parallel low-index reflections of the two zones) and directions."""
+    cx, cy = float(centre_xy[0]), float(centre_xy[1])
+
     def rows(c: ZoneCandidate):
-        cx, cy = np.mean([[s.x for s in c.predicted], [s.y for s in c.predicted]], axis=1) if c.predicted else (0, 0)
         out = []
         for s in c.predicted:
             if s.forbidden:
