@@ -12,7 +12,8 @@ the rest is computed. When every chunk is done the outputs are written:
 - ``frames.csv``: one row per frame (centre, spot count, phase, zone, rotation,
   score, virtual detector sums, error of a failed frame);
 - ``spots.csv``: one row per spot (position, intensity, d);
-- ``maps.h5``: the maps of :func:`~saedkit.core.series.maps.calculate_series_maps`;
+- ``maps.h5``: the maps of :func:`~saedkit.core.series.maps.calculate_series_maps`
+  (and, for a 1-D rotation series, the rotation axis direction in its attributes);
 - ``mask.npy``: the mask used for every frame;
 - ``maps/*.png``: figures of the maps (matplotlib, Agg canvas).
 """
@@ -35,6 +36,7 @@ import numpy as np
 from saedkit.core.errors import InputError
 
 __all__ = ["SeriesRun", "run_series", "prepare_series_mask", "read_series_run", "default_detector_radii",
+           "calculate_series_rotation_axis",
            "write_frames_csv", "write_spots_csv", "write_series_figures"]
 
 _CHUNK_DIR = "chunks"
@@ -59,6 +61,7 @@ class SeriesRun:
     frames: tuple = field(repr=False)
     maps: object = field(default=None, repr=False)
     files: dict = field(default_factory=dict)
+    rotation_axis: object = None  # RotationAxis of a 1-D (rotation) series, when its spots give one
 
     @property
     def n_frames_ok(self) -> int:
@@ -74,6 +77,8 @@ class SeriesRun:
                "files": {k: str(v) for k, v in self.files.items()}}
         if self.maps is not None:
             rec["maps"] = self.maps.to_dict()
+        if self.rotation_axis is not None:
+            rec["rotation_axis"] = self.rotation_axis.to_dict()
         return rec
 
 
@@ -317,11 +322,38 @@ def run_series(source, *, options, out_dir: str | os.PathLike, frames_per_chunk:
         maps = calculate_series_maps(results, series.scan_shape, phases=options.phase_names())
         files["frames_csv"] = write_frames_csv(results, out / "frames.csv")
         files["spots_csv"] = write_spots_csv(results, out / "spots.csv")
-        files["maps_h5"] = write_series_maps(maps, out / "maps.h5", attrs={
-            "software": "saedkit", "source": series.source, "options": options.to_dict()})
+        axis = calculate_series_rotation_axis(results) if len(series.scan_shape) == 1 else None
+        attrs = {"software": "saedkit", "source": series.source, "options": options.to_dict()}
+        if axis is not None:
+            attrs["rotation_axis"] = axis.to_dict()
+        files["maps_h5"] = write_series_maps(maps, out / "maps.h5", attrs=attrs)
         if write_figures:
             files.update(write_series_figures(maps, out / "maps"))
-    return SeriesRun(str(out), series.to_dict(), complete, len(bounds), len(done), computed, results, maps, files)
+    else:
+        axis = None
+    return SeriesRun(str(out), series.to_dict(), complete, len(bounds), len(done), computed, results, maps, files,
+                     axis)
+
+
+def calculate_series_rotation_axis(results):
+    """The rotation axis of a 1-D rotation series from its frames' spots (offsets from each frame's centre).
+
+    See :func:`saedkit.core.series.rotation.find_rotation_axis`; None when
+    the spots give too few tracks (e.g. a crystal that does not turn).
+    """
+    from saedkit.core.series.rotation import find_rotation_axis
+
+    per_frame = []
+    for r in sorted(results, key=lambda r: r.frame):
+        if not r.ok:
+            per_frame.append(None)
+            continue
+        if not r.spots:
+            per_frame.append(np.zeros((0, 2)))
+            continue
+        xy = np.array([[x, y] for x, y, _i, _d in r.spots], float)
+        per_frame.append(xy - [r.centre_x_px, r.centre_y_px])
+    return find_rotation_axis(per_frame)
 
 
 def _run_distributed(tasks, cluster, workers, take) -> bool:

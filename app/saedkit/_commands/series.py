@@ -117,6 +117,9 @@ def run(args):
         lines.append(f"  no phase: {m['no_phase']} frames")
         for name, count in m["orientation_counts"].items():
             lines.append(f"  {name}: {count} frames")
+    if result.rotation_axis is not None:
+        ax = result.rotation_axis
+        lines.append(f"  rotation axis {ax.angle_deg:.1f}° ± {ax.sigma_deg:.1f}° from +x (from {ax.n_tracks} spot tracks)")
     for f in rec["failed_frames"][:10]:
         lines.append(f"  FAIL {f['error']}")
     return rec, "\n".join(lines)

@@ -29,39 +29,42 @@ JUMP_AT = 9  # from this frame on the centre sits 6 px further right
 ROT0 = {"A": 12.0, "B": 40.0}
 
 
-def grain_of(iy: int, ix: int) -> str:
-    return "A" if ix + 0.5 * iy < 3.5 else "B"
+def grain_of(iy: int, ix: int, nx: int = SCAN[1]) -> str:
+    return "A" if ix + 0.5 * iy < 3.5 * nx / 6 else "B"
 
 
-def truth_of(i: int) -> dict:
-    iy, ix = divmod(i, SCAN[1])
-    g = grain_of(iy, ix)
-    cx = FRAME / 2 - 0.3 + 0.12 * i + (6.0 if i >= JUMP_AT else 0.0)
-    cy = FRAME / 2 + 0.4 - 0.05 * i
-    return {"grain": g, "phase": "Ni" if g == "A" else "Fe", "rotation_deg": ROT0[g] + 0.5 * ix,
+def truth_of(i: int, *, scan=SCAN, frame: int | None = None, drift_px: float = 0.12) -> dict:
+    frame = FRAME if frame is None else frame
+    iy, ix = divmod(i, scan[1])
+    g = grain_of(iy, ix, scan[1])
+    cx = frame / 2 - 0.3 + drift_px * i + (6.0 if i >= JUMP_AT else 0.0)
+    cy = frame / 2 + 0.4 - drift_px / 2.4 * i
+    return {"grain": g, "phase": "Ni" if g == "A" else "Fe", "rotation_deg": ROT0[g] + 0.5 * ix * 6 / scan[1],
             "centre_xy": (cx, cy)}
 
 
-def draw_frame(i: int, rng) -> np.ndarray:
+def draw_frame(i: int, rng, *, scan=SCAN, frame: int | None = None, K: float = K_PX_A,
+               drift_px: float = 0.12) -> np.ndarray:
     """Gaussian spots at c + K·R(θ)·(m g1 + n g2) (the camera equation R = K/d), a direct beam, noise."""
-    t = truth_of(i)
+    size = FRAME if frame is None else frame
+    t = truth_of(i, scan=scan, frame=size, drift_px=drift_px)
     if t["phase"] == "Ni":
         g1, g2 = np.array([2 / A_NI, 0.0]), np.array([0.0, 2 / A_NI])
     else:
         g1, g2 = np.array([2 / A_FE, 0.0]), np.array([0.0, np.sqrt(2) / A_FE])
     th = np.deg2rad(t["rotation_deg"])
     rot = np.array([[np.cos(th), -np.sin(th)], [np.sin(th), np.cos(th)]])
-    yy, xx = np.indices((FRAME, FRAME), dtype=float)
+    yy, xx = np.indices((size, size), dtype=float)
     cx, cy = t["centre_xy"]
-    img = np.full((FRAME, FRAME), 120.0)
+    img = np.full((size, size), 120.0)
     img += 30000.0 * np.exp(-((xx - cx) ** 2 + (yy - cy) ** 2) / (2 * 2.2 ** 2))  # direct beam
     for m in range(-4, 5):
         for n in range(-4, 5):
             if m == n == 0:
                 continue
             g = m * g1 + n * g2
-            x, y = np.array([cx, cy]) + K_PX_A * rot @ g
-            if not (5 < x < FRAME - 6 and 5 < y < FRAME - 6):
+            x, y = np.array([cx, cy]) + K * rot @ g
+            if not (5 < x < size - 6 and 5 < y < size - 6):
                 continue
             peak = 3000.0 * np.exp(-0.5 * (np.linalg.norm(g) / 1.1) ** 2)
             img += peak * np.exp(-((xx - x) ** 2 + (yy - y) ** 2) / (2 * 1.6 ** 2))
