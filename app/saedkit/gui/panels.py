@@ -30,6 +30,7 @@ from PySide6.QtWidgets import (
     QListWidgetItem,
     QPushButton,
     QSlider,
+    QSplitter,
     QSpinBox,
     QTableView,
     QTableWidget,
@@ -44,7 +45,7 @@ from saedkit.core.crystallography.crystal import format_indices
 from saedkit.gui.display import COLOUR_MAPS, MAPPINGS, DisplaySettings
 from saedkit.gui.icons import icon
 from saedkit.gui.overlays import draw_indices
-from saedkit.gui.plot import ProfilePlot
+from saedkit.gui.plot import AXES as PLOT_AXES, ProfilePlot
 from saedkit.gui.view import LAYER_NAMES
 
 #: Item-data role holding a Miller-index tuple, drawn with overbars by IndicesDelegate.
@@ -261,15 +262,30 @@ class CalibrationPanel(_Panel):
         self.result.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
         lay.addWidget(self.result)
         self.plot = ProfilePlot()
-        lay.addWidget(self.plot)
+        self.plot_axis = QComboBox()
+        self.plot_axis.addItems(list(PLOT_AXES))
+        self.plot_axis.setToolTip("Horizontal axis of the radial profile: radius, d-spacing or |g| "
+                                  "(the last two with the camera constant, R·d = K)")
+        self.plot_axis.currentTextChanged.connect(lambda _t: self._apply_plot_axis())
+        axis_row = QHBoxLayout()
+        axis_row.addWidget(QLabel("Profile against"))
+        axis_row.addWidget(self.plot_axis, 1)
+        lay.addLayout(axis_row)
         self.table = QTableWidget(0, 5)
         self.table.setHorizontalHeaderLabels(["hkl", "d (Å)", "R (px)", "ΔR (px)", "ΔR (%)"])
         self.table.setItemDelegateForColumn(0, IndicesDelegate("()", self.table))
         self.table.verticalHeader().setVisible(False)
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
-        self.table.setMaximumHeight(160)
-        lay.addWidget(self.table)
+        # the profile and the ring table share a splitter: drag the handle to make the plot taller
+        self.splitter = QSplitter(Qt.Orientation.Vertical)
+        self.splitter.addWidget(self.plot)
+        self.splitter.addWidget(self.table)
+        self.splitter.setChildrenCollapsible(False)
+        self.splitter.setStretchFactor(0, 1)
+        self.splitter.setSizes([220, 140])
+        self.splitter.setMinimumHeight(300)
+        lay.addWidget(self.splitter, 1)
 
         lib_box = QGroupBox("Calibration library")
         lib_lay = QGridLayout(lib_box)
@@ -450,6 +466,15 @@ class CalibrationPanel(_Panel):
         elif ring_fit is not None:
             rings = [(float(r.radius_px), None, None) for r in ring_fit.rings]
         self.plot.set_data(profile.radius_px, profile.intensity, rings)
+        self._apply_plot_axis()
+
+    def _apply_plot_axis(self) -> None:
+        s = self.session
+        k = None
+        if s is not None:
+            k_val, _, _, source = s.camera_constant
+            k = k_val if source != "none" and math.isfinite(k_val) else None
+        self.plot.set_axis(self.plot_axis.currentText(), k)
 
 
 # --------------------------------------------------------------------------- phases
