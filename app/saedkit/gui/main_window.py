@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
-from PySide6.QtCore import QByteArray, Qt, QTimer
+from PySide6.QtCore import QByteArray, QPointF, Qt, QTimer
 from PySide6.QtGui import QAction, QActionGroup, QKeySequence
 from PySide6.QtWidgets import (
     QCheckBox,
@@ -53,6 +53,7 @@ from saedkit.gui.icons import icon
 from saedkit.gui.panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, RingPhasesPanel, SearchPanel
 from saedkit.gui.tools import TOOL_CLASSES, describe_pair
 from saedkit.gui.view import LAYER_NAMES, PatternView, calculate_argb_image
+from saedkit.gui.magnifier import Magnifier
 from saedkit.gui.widgets import guard_wheel
 from saedkit.gui.workers import TaskRunner
 
@@ -165,6 +166,7 @@ class MainWindow(QMainWindow):
         # the notice bar floats over the top of the view, so a message never moves the image
         self.notice = NoticeBar(self.view)
         self.notice.attach_to(self.view)
+        self.magnifier = Magnifier(self.view.viewport())
         self.tools = {cls.name: cls(self) for cls in TOOL_CLASSES}
         self.tool = None
 
@@ -174,7 +176,7 @@ class MainWindow(QMainWindow):
         self._build_toolbars()
         self._build_status()
         self.view.cursor_moved.connect(self._cursor_moved)
-        self.view.cursor_left.connect(lambda: self.readout.setText(""))
+        self.view.cursor_left.connect(self._cursor_left)
         self.view.files_dropped.connect(lambda paths: self.guard(lambda: self.open_path(paths[0])))
         self.runner.busy_changed.connect(self._busy_changed)
         self.runner.task_started.connect(lambda key, label: self._task_label.setText(label + "…"))
@@ -266,6 +268,9 @@ class MainWindow(QMainWindow):
         self.act_fitted_grid = self._act("Candidate grid with its &fitted K", lambda on: self.refresh_overlays(),
                                          checkable=True, tip="Draw the chosen candidate's grid with the camera "
                                          "constant its fit found, not the calibration's (calibrated patterns)")
+        self.act_magnifier = self._act("&Magnifier", lambda on: None if on else self.magnifier.hide(),
+                                       shortcut="Ctrl+M", checkable=True,
+                                       tip="Show the pixels around the cursor enlarged beside it (Ctrl+M)")
         self.act_pattern_only = self._act("&Pattern only", self.toggle_pattern_only, shortcut="F11", checkable=True,
                                           tip="Hide the panels and the tool options to give the whole window to the "
                                           "pattern (F11 again brings them back)")
@@ -311,6 +316,7 @@ class MainWindow(QMainWindow):
         ov.addSeparator()
         ov.addAction(self.act_fitted_grid)
         m.addSeparator()
+        m.addAction(self.act_magnifier)
         m.addAction(self.act_table)
         m.addAction(self.act_pattern_only)
         panels = m.addMenu("&Panels")
@@ -434,7 +440,7 @@ class MainWindow(QMainWindow):
     def _build_status(self) -> None:
         sb = self.statusBar()
         self.readout = QLabel("")
-        self.readout.setMinimumWidth(420)
+        self.readout.setMinimumWidth(560)
         self.readout.setStyleSheet("font-family: monospace;")
         self._task_label = QLabel("")
         self.progress = QProgressBar()
@@ -1603,21 +1609,35 @@ class MainWindow(QMainWindow):
 
     # ================================================================== read-out
 
-    def _cursor_moved(self, x: float, y: float) -> None:
+    def readout_text(self, x: float, y: float) -> str:
+        """The cursor read-out at image point (x, y): position, intensity, R, azimuth, d and |g| ("" outside)."""
         s = self.session
         if s is None:
-            return
+            return ""
         r = s.describe_point(x, y)
         if not r.inside:
-            self.readout.setText("")
-            return
-        parts = [f"x {x:8.1f}", f"y {y:8.1f}", f"I {r.value:.5g}" + (" (masked)" if r.masked else "")]
+            return ""
+        parts = [f"x {x:7.1f}", f"y {y:7.1f}", f"I {r.value:.5g}" + (" (masked)" if r.masked else "")]
         if math.isfinite(r.radius_px):
             parts.append(f"R {r.radius_px:.1f} px")
+            parts.append(f"φ {r.angle_deg:.1f}°")
         if math.isfinite(r.d_A):
             parts.append(f"d {r.d_A:.4f} Å")
             parts.append(f"|g| {r.g_per_nm:.3f} nm⁻¹")
-        self.readout.setText("   ".join(parts))
+        return "   ".join(parts)
+
+    def _cursor_moved(self, x: float, y: float) -> None:
+        text = self.readout_text(x, y)
+        self.readout.setText(text)
+        if self.act_magnifier.isChecked() and text:
+            pos = self.view.mapFromScene(QPointF(x, y))
+            self.magnifier.show_at(self.view.image_item._buffer, self.view._image_step, (x, y), pos)
+        else:
+            self.magnifier.hide()
+
+    def _cursor_left(self) -> None:
+        self.readout.setText("")
+        self.magnifier.hide()
 
     # ================================================================== misc dialogs
 
