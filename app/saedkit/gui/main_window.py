@@ -54,6 +54,7 @@ from saedkit.gui.panels import CalibrationPanel, DisplayPanel, MeasurementsPanel
 from saedkit.gui.tools import TOOL_CLASSES, describe_pair
 from saedkit.gui.view import LAYER_NAMES, PatternView, calculate_argb_image
 from saedkit.gui.magnifier import Magnifier
+from saedkit.gui.plot import CurvePlot
 from saedkit.gui.widgets import guard_wheel
 from saedkit.gui.workers import TaskRunner
 
@@ -254,12 +255,13 @@ class MainWindow(QMainWindow):
         self.act_cancel = self._act("Cancel running work", lambda: self.runner.cancel(), shortcut="Ctrl+.")
         self.tool_group = QActionGroup(self)
         self.tool_actions: dict[str, QAction] = {}
-        icons = {"pan": "pan", "centre": "centre", "spot": "spot", "ruler": "measure", "mask": "mask"}
+        icons = {"pan": "pan", "centre": "centre", "spot": "spot", "ruler": "measure", "mask": "mask",
+                 "profile": "measure"}
         for n, cls in enumerate(TOOL_CLASSES, start=2):
             a = QAction(icon(icons[cls.name]), cls.title, self)
             a.setCheckable(True)
             a.setShortcut(QKeySequence(f"Ctrl+{n}"))
-            a.setToolTip(f"{cls.title} tool — {cls.hint}")
+            a.setToolTip(f"{cls.title} tool (Ctrl+{n}) — {cls.hint}")
             a.setStatusTip(cls.hint)
             a.triggered.connect(lambda _=False, name=cls.name: self.set_tool(name))
             self.tool_group.addAction(a)
@@ -427,6 +429,10 @@ class MainWindow(QMainWindow):
         self.docks["calibration"].raise_()
         self._dock("measurements", "Measurements", self.measurements_panel, Qt.DockWidgetArea.BottomDockWidgetArea,
                    scroll=False)
+        self.profile_plot = CurvePlot()
+        self._dock("profile", "Profile", self.profile_plot, Qt.DockWidgetArea.BottomDockWidgetArea, scroll=False)
+        self.tabifyDockWidget(self.docks["measurements"], self.docks["profile"])
+        self.docks["profile"].hide()
         self.docks["measurements"].hide()
         self._table_hidden_by_user = False
         self.docks["measurements"].toggleViewAction().triggered.connect(
@@ -1083,6 +1089,47 @@ class MainWindow(QMainWindow):
         if self.session is not None and not self.session.redo():
             self.show_status("Nothing to redo.")
 
+    def show_line_profile(self, a_xy, b_xy) -> None:
+        """The intensity along the line from ``a_xy`` to ``b_xy`` (spots on it marked), in the Profile panel."""
+        from saedkit.core.profiles import calculate_line_profile
+
+        s = self._require()
+        prof = calculate_line_profile(s.image.data, a_xy, b_xy, mask=s.mask,
+                                      spots_xy=s.spots_xy if s.spots else None)
+        self.line_profile = prof
+        self.profile_plot.set_curve(prof.distance_px, prof.intensity, x_name="distance (px)",
+                                    title=f"line ({a_xy[0]:.0f}, {a_xy[1]:.0f}) → ({b_xy[0]:.0f}, {b_xy[1]:.0f}), "
+                                          f"{prof.length_px:.1f} px",
+                                    marks=[(d, str(i + 1)) for d, i in zip(prof.spot_distance_px, prof.spot_index)])
+        self.view.measure_layer.set_points(a_xy, b_xy)
+        self._show_profile_dock()
+
+    def show_azimuthal_profile(self, xy) -> None:
+        """The intensity round the ring through ``xy`` (about the centre, with the calibration's distortion)."""
+        from saedkit.core.profiles import calculate_azimuthal_profile
+
+        s = self._require()
+        if s.centre is None:
+            raise InputError("an azimuthal profile needs the centre: set it first (Centre tool or Analyse menu)")
+        _, _, ell, _ = s.camera_constant
+        c = (s.centre.x, s.centre.y)
+        ideal = ell.correct_array(np.array([[xy[0] - c[0], xy[1] - c[1]]]))[0]
+        r = float(np.hypot(*ideal))
+        prof = calculate_azimuthal_profile(s.image.data, c, r, width_px=3.0, ellipse=ell, mask=s.mask)
+        self.azimuthal_profile = prof
+        k, _, _, source = s.camera_constant
+        d_txt = f", d = {k / r:.4f} Å" if source != "none" and math.isfinite(k) else ""
+        self.profile_plot.set_curve(prof.angle_deg, prof.intensity, x_name="azimuth (°)",
+                                    title=f"ring R = {r:.1f} px{d_txt}, band 3 px")
+        self._show_profile_dock()
+
+    def _show_profile_dock(self) -> None:
+        d = self.docks["profile"]
+        if self.act_pattern_only.isChecked():
+            self.act_pattern_only.setChecked(False)
+        d.show()
+        d.raise_()
+
     def _sync_table_action(self) -> None:
         self.act_table.blockSignals(True)
         self.act_table.setChecked(not self.docks["measurements"].isHidden())
@@ -1655,7 +1702,7 @@ class MainWindow(QMainWindow):
                  "left-drag pans with the Pan tool."]
         for cls in TOOL_CLASSES:
             lines.append(f"<b>{cls.title}</b>: {cls.hint}")
-        lines.append("<b>Keys</b>: Ctrl+2…6 choose a tool; F5 find spots; F6 search; F7 calibrate; F8 identify phases; "
+        lines.append("<b>Keys</b>: Ctrl+2…7 choose a tool; F5 find spots; F6 search; F7 calibrate; F8 identify phases; "
                      "Ctrl+0 fit; Ctrl+1 actual pixels; Ctrl+C in the table copies it.")
         QMessageBox.information(self, "Mouse and keys", "<br><br>".join(lines))
 

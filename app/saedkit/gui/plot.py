@@ -14,7 +14,7 @@ from saedkit.gui.overlays import draw_indices, indices_size
 #: What the horizontal axis shows: radius (px), spacing d (Å) or |g| (nm⁻¹), the last two with K.
 AXES = ("R (px)", "d (Å)", "|g| (nm⁻¹)")
 
-__all__ = ["ProfilePlot"]
+__all__ = ["ProfilePlot", "CurvePlot", "AXES"]
 
 
 def _nice_ticks(lo: float, hi: float, n: int = 6) -> list[float]:
@@ -214,3 +214,119 @@ class ProfilePlot(QWidget):
             p.fillRect(QRectF(xr - 2.5, mid - max(hgt, 0), 5, abs(hgt)), QColor("#ffb627"))
         p.setPen(QColor("#9aa7b4"))
         p.drawText(QPointF(2, mid + fm.ascent() / 2), f"±{top_pct:.2g}%")
+
+
+class CurvePlot(QWidget):
+    """A plain curve (a line or an azimuthal profile) with marked positions (the spots on the line).
+
+    Call :meth:`set_curve` with x, y (NaN gaps allowed), the axis name, and
+    ``marks``: a list of (x, text) drawn as vertical ticks with their text.
+    """
+
+    def __init__(self, parent=None) -> None:
+        super().__init__(parent)
+        self.setSizePolicy(QSizePolicy.Policy.Expanding, QSizePolicy.Policy.Expanding)
+        self.setMinimumHeight(120)
+        self.x = np.zeros(0)
+        self.y = np.zeros(0)
+        self.x_name = ""
+        self.title = ""
+        self.marks: list[tuple[float, str]] = []
+        self.message = "Drag with the Profile tool for a line profile; double-click on a ring for its azimuthal profile."
+        self.mark_boxes: list = []
+
+    def sizeHint(self) -> QSize:  # noqa: N802
+        return QSize(320, 200)
+
+    def set_curve(self, x, y, *, x_name: str, title: str = "", marks=()) -> None:
+        self.x = np.asarray(x, float).reshape(-1)
+        self.y = np.asarray(y, float).reshape(-1)
+        self.x_name = x_name
+        self.title = title
+        self.marks = [(float(a), str(t)) for a, t in marks]
+        self.update()
+
+    def paintEvent(self, event) -> None:  # noqa: N802
+        p = QPainter(self)
+        try:
+            self._paint(p)
+        finally:
+            p.end()
+
+    def _paint(self, p: QPainter) -> None:
+        from saedkit.core.label_layout import place_labels
+
+        p.setRenderHint(QPainter.RenderHint.Antialiasing, True)
+        p.fillRect(self.rect(), QColor("#1b2027"))
+        font = QFont()
+        font.setPointSizeF(7.5)
+        p.setFont(font)
+        fm = QFontMetricsF(font)
+        w, h = self.width(), self.height()
+        ok = np.isfinite(self.x) & np.isfinite(self.y)
+        if ok.sum() < 2:
+            p.setPen(QColor("#9aa7b4"))
+            p.drawText(QRectF(8, 8, w - 16, h - 16), Qt.AlignmentFlag.AlignCenter | Qt.TextFlag.TextWordWrap,
+                       self.message)
+            return
+        plot = QRectF(46.0, 30.0, w - 54.0, h - 30.0 - 22.0)
+        x0, x1 = float(self.x[ok].min()), float(self.x[ok].max())
+        lo, hi = float(self.y[ok].min()), float(self.y[ok].max())
+        if not hi > lo:
+            hi = lo + 1.0
+        sx = plot.width() / max(x1 - x0, 1e-9)
+        sy = plot.height() / (hi - lo)
+
+        def mx(v):
+            return plot.left() + (v - x0) * sx
+
+        def my(v):
+            return plot.bottom() - (v - lo) * sy
+
+        p.setPen(QPen(QColor("#56606b"), 1))
+        p.drawRect(plot)
+        col = QColor("#2fd3c4")
+        places = []
+        for xm, text in self.marks:
+            if not (x0 <= xm <= x1):
+                places.append([])
+                continue
+            tw = fm.horizontalAdvance(text) + 4
+            places.append([((mx(xm) - tw / 2 + dx, y, mx(xm) + tw / 2 + dx, y + fm.height()), (mx(xm), plot.top()),
+                            dx != 0 or k > 0) for k, y in enumerate((2.0, 2.0 + fm.height()))
+                           for dx in (0.0, tw / 2 + 1, -tw / 2 - 1)])
+        self.mark_boxes = place_labels(places, bounds=(0, 0, w, plot.top()), gap_px=1.0)
+        for (xm, text), lab in zip(self.marks, self.mark_boxes):
+            if not (x0 <= xm <= x1):
+                continue
+            p.setPen(QPen(col, 1, Qt.PenStyle.DashLine))
+            p.drawLine(QPointF(mx(xm), plot.top()), QPointF(mx(xm), plot.bottom()))
+            if lab is not None:
+                p.setPen(col)
+                p.drawText(QPointF(lab.box[0] + 2, lab.box[1] + fm.ascent()), text)
+        p.setPen(QPen(QColor("#cfe3f5"), 1.2))
+        seg: list[QPointF] = []
+        for a, b, good in zip(self.x, self.y, ok):
+            if good:
+                seg.append(QPointF(mx(a), my(b)))
+            elif seg:
+                p.drawPolyline(QPolygonF(seg))
+                seg = []
+        if seg:
+            p.drawPolyline(QPolygonF(seg))
+        p.setPen(QColor("#9aa7b4"))
+        last = -1e9
+        for v in _nice_ticks(x0, x1):
+            xt = mx(v)
+            text = f"{v:g}"
+            tw = fm.horizontalAdvance(text)
+            p.drawLine(QPointF(xt, plot.bottom()), QPointF(xt, plot.bottom() + 3))
+            if xt - tw / 2 > last + 4 and xt + tw / 2 < plot.right() - fm.horizontalAdvance(self.x_name) - 6:
+                p.drawText(QPointF(xt - tw / 2, plot.bottom() + fm.ascent() + 3), text)
+                last = xt + tw / 2
+        p.drawText(QPointF(plot.right() - fm.horizontalAdvance(self.x_name), plot.bottom() + fm.ascent() + 3),
+                   self.x_name)
+        p.drawText(QPointF(2, plot.top() + fm.ascent()), f"{hi:.4g}")
+        p.drawText(QPointF(2, plot.bottom()), f"{lo:.4g}")
+        if self.title:
+            p.drawText(QPointF(plot.left(), h - 4), self.title)

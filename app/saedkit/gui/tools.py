@@ -18,7 +18,7 @@ from saedkit.core.detection.centre import manual_centre
 from saedkit.core.errors import SaedkitError
 from saedkit.gui.panels import fmt_pm
 
-__all__ = ["Tool", "PanTool", "CentreTool", "SpotTool", "RulerTool", "MaskTool", "TOOL_CLASSES"]
+__all__ = ["Tool", "PanTool", "CentreTool", "SpotTool", "RulerTool", "MaskTool", "ProfileTool", "TOOL_CLASSES"]
 
 _HIT_PX = 9.0  # how close (screen pixels) a click must be to a marker to grab it
 
@@ -443,4 +443,54 @@ class MaskTool(Tool):
         self.view.stroke_layer.set_state(cursor=None)
 
 
-TOOL_CLASSES = (PanTool, CentreTool, SpotTool, RulerTool, MaskTool)
+class ProfileTool(Tool):
+    """Drag a line: the intensity along it, with the spots on it; double-click on a ring: its azimuthal profile."""
+
+    name = "profile"
+    title = "Profile"
+    hint = ("Drag from one point to another for the intensity along the line (spots on it marked); "
+            "double-click on a ring for the intensity round it. Esc clears.")
+    cursor = Qt.CursorShape.CrossCursor
+
+    def __init__(self, ctx) -> None:
+        super().__init__(ctx)
+        self.start: tuple[float, float] | None = None
+
+    def deactivate(self) -> None:
+        self.start = None
+
+    def press(self, xy, button, mods) -> bool:
+        if button != LEFT or self.session is None or not self._inside(xy):
+            return False
+        self.start = (float(xy[0]), float(xy[1]))
+        self.view.measure_layer.set_points(self.start)
+        return True
+
+    def move(self, xy, buttons, mods) -> None:
+        if self.start is not None and buttons & LEFT:
+            self.view.measure_layer.set_points(self.start, xy)
+
+    def release(self, xy, button, mods) -> bool:
+        if self.start is None or button != LEFT:
+            return False
+        a, self.start = self.start, None
+        if math.hypot(xy[0] - a[0], xy[1] - a[1]) < 2.0:
+            return True  # a click, not a drag (a double-click follows, or nothing)
+        self.ctx.guard(lambda: self.ctx.show_line_profile(a, (float(xy[0]), float(xy[1]))))
+        return True
+
+    def double_click(self, xy, mods) -> bool:
+        if self.session is None or not self._inside(xy):
+            return False
+        self.ctx.guard(lambda: self.ctx.show_azimuthal_profile((float(xy[0]), float(xy[1]))))
+        return True
+
+    def key(self, key, mods) -> bool:
+        if key == Qt.Key.Key_Escape:
+            self.start = None
+            self.view.measure_layer.clear()
+            return True
+        return False
+
+
+TOOL_CLASSES = (PanTool, CentreTool, SpotTool, RulerTool, MaskTool, ProfileTool)
