@@ -205,10 +205,11 @@ class MainWindow(QMainWindow):
                 a.setShortcuts([QKeySequence(s) for s in shortcut])
             else:
                 a.setShortcut(QKeySequence(shortcut))
-        if tip:
-            a.setStatusTip(tip)
-            a.setToolTip(tip)
         a.setCheckable(checkable)
+        keys = a.shortcut().toString(QKeySequence.SequenceFormat.NativeText)
+        tip = tip or text.replace("&", "").rstrip("…")
+        a.setStatusTip(tip)
+        a.setToolTip(f"{tip} ({keys})" if keys else tip)
         if checkable:
             a.toggled.connect(slot)
         else:
@@ -220,7 +221,7 @@ class MainWindow(QMainWindow):
         SK = QKeySequence.StandardKey
         self.act_open = self._act("&Open pattern…", self.open_dialog, icon_name="open", shortcut=SK.Open,
                                   tip="Open a diffraction pattern (TIFF, MRC, PNG, JPEG, NPY) or a saved session")
-        self.act_open_session = self._act("Open &session…", self.open_session_dialog)
+        self.act_open_session = self._act("Open &session…", self.open_session_dialog, shortcut="Ctrl+Shift+O")
         self.act_save = self._act("&Save session", self.save_session, icon_name="save", shortcut=SK.Save,
                                   tip="Save the whole session (centre, spots, mask, calibration, results) as one file")
         self.act_save_as = self._act("Save session &as…", self.save_session_as, shortcut=SK.SaveAs)
@@ -247,11 +248,13 @@ class MainWindow(QMainWindow):
         self.act_identify = self._act("&Identify phases from rings", self.identify_phases, shortcut="F8",
                                       tip="Rank the ticked phases (or the whole library) that explain the rings "
                                       "of a polycrystalline film; needs a camera constant")
-        self.act_centre_rings = self._act("Centre from &rings", self.centre_from_rings)
-        self.act_centre_friedel = self._act("Centre from Friedel &pairs", self.centre_from_friedel)
-        self.act_auto_mask = self._act("Automatic &mask", self.auto_mask,
+        self.act_centre_rings = self._act("Centre from &rings", self.centre_from_rings, shortcut="Shift+F4",
+                                          tip="Fit the rings and take their common centre")
+        self.act_centre_friedel = self._act("Centre from Friedel &pairs", self.centre_from_friedel, shortcut="F4",
+                                            tip="Find the centre from spots and their Friedel partners (g, −g)")
+        self.act_auto_mask = self._act("Automatic &mask", self.auto_mask, shortcut="F3",
                                        tip="Mask the saturated pixels and the beam stop")
-        self.act_clear_mask = self._act("&Clear mask", self.clear_mask)
+        self.act_clear_mask = self._act("&Clear mask", self.clear_mask, shortcut="Shift+F3")
         self.act_cancel = self._act("Cancel running work", lambda: self.runner.cancel(), shortcut="Ctrl+.")
         self.tool_group = QActionGroup(self)
         self.tool_actions: dict[str, QAction] = {}
@@ -345,6 +348,9 @@ class MainWindow(QMainWindow):
         m.addSeparator()
         a = m.addAction("&Mouse and keys")
         a.triggered.connect(self._show_help)
+        self.act_shortcuts = self._act("&Keyboard shortcuts", self.show_shortcuts, shortcut="F1",
+                                       tip="Every key of the program on one sheet")
+        m.addAction(self.act_shortcuts)
         a = m.addAction("&About saedkit")
         a.triggered.connect(self._about)
 
@@ -1705,6 +1711,56 @@ class MainWindow(QMainWindow):
         lines.append("<b>Keys</b>: Ctrl+2…7 choose a tool; F5 find spots; F6 search; F7 calibrate; F8 identify phases; "
                      "Ctrl+0 fit; Ctrl+1 actual pixels; Ctrl+C in the table copies it.")
         QMessageBox.information(self, "Mouse and keys", "<br><br>".join(lines))
+
+    def shortcut_rows(self) -> list[tuple[str, str, str]]:
+        """(menu, command, keys) of every command with a key, menu by menu, for the shortcut sheet."""
+        rows = []
+        seen = set()
+        for menu_action in self.menuBar().actions():
+            menu = menu_action.menu()
+            if menu is None:
+                continue
+            stack = [(menu_action.text().replace("&", ""), menu)]
+            while stack:
+                title, m = stack.pop(0)
+                for a in m.actions():
+                    if a.menu() is not None:
+                        stack.append((f"{title} ▸ {a.text().replace('&', '')}", a.menu()))
+                        continue
+                    keys = ", ".join(k.toString(QKeySequence.SequenceFormat.NativeText) for k in a.shortcuts())
+                    if keys and id(a) not in seen:
+                        seen.add(id(a))
+                        rows.append((title, a.text().replace("&", "").split("\t")[0], keys))
+        rows.append(("Pattern", "Zoom round the cursor", "mouse wheel"))
+        rows.append(("Pattern", "Pan with any tool", "middle-drag"))
+        rows.append(("Measurement table", "Copy the selected rows", QKeySequence(QKeySequence.StandardKey.Copy)
+                     .toString(QKeySequence.SequenceFormat.NativeText)))
+        return rows
+
+    def show_shortcuts(self) -> None:
+        """The keyboard shortcut sheet (Help ▸ Keyboard shortcuts, F1), built from the menus themselves."""
+        from PySide6.QtWidgets import QDialogButtonBox, QHeaderView, QTableWidget, QTableWidgetItem
+
+        dlg = QDialog(self)
+        dlg.setWindowTitle("Keyboard shortcuts")
+        rows = self.shortcut_rows()
+        table = QTableWidget(len(rows), 3, dlg)
+        table.setHorizontalHeaderLabels(["Where", "Command", "Keys"])
+        table.verticalHeader().setVisible(False)
+        table.setEditTriggers(QTableWidget.EditTrigger.NoEditTriggers)
+        for i, row in enumerate(rows):
+            for j, v in enumerate(row):
+                table.setItem(i, j, QTableWidgetItem(v))
+        table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
+        table.horizontalHeader().setStretchLastSection(True)
+        buttons = QDialogButtonBox(QDialogButtonBox.StandardButton.Close)
+        buttons.rejected.connect(dlg.reject)
+        lay = QVBoxLayout(dlg)
+        lay.addWidget(table)
+        lay.addWidget(buttons)
+        dlg.resize(560, 640)
+        self.shortcut_sheet = dlg
+        dlg.show()
 
     def _about(self) -> None:
         from saedkit import __version__
