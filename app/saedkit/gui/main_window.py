@@ -1198,6 +1198,17 @@ class MainWindow(QMainWindow):
         return snap_to_spot(s.image.data, (float(xy[0]), float(xy[1])), mask=s.mask,
                             search_radius_px=s.settings.snap_radius_px)
 
+    def find_beam_at(self, xy):
+        """The direct beam near a click, refined (a saturated or masked top is fitted on its flanks); None if none."""
+        s = self._require()
+        from saedkit.core.detection.spots import snap_to_spot
+
+        try:
+            return snap_to_spot(s.image.data, (float(xy[0]), float(xy[1])), mask=None,
+                                search_radius_px=max(2.0 * s.settings.snap_radius_px, 12.0), spot_sigma_px=3.0)
+        except SaedkitError:
+            return None
+
     def paint_mask(self, points, radius_px: float, *, erase: bool = False) -> None:
         """Apply a brush stroke (discs along ``points``) to the mask: one undo step."""
         from saedkit.core.detection.masks import mask_disc
