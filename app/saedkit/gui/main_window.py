@@ -107,6 +107,12 @@ def _phases_to_search(session: Session) -> list[str]:
     return names
 
 
+def _detector_mask_folder() -> Path:
+    from saedkit.core.workflow.session import data_dir
+
+    return data_dir() / "detector_masks"
+
+
 def _warm_up_imports() -> None:
     """Import the computing modules in a background thread, so the first click or search does not wait."""
     import importlib
@@ -255,6 +261,10 @@ class MainWindow(QMainWindow):
         self.act_auto_mask = self._act("Automatic &mask", self.auto_mask, shortcut="F3",
                                        tip="Mask the saturated pixels and the beam stop")
         self.act_clear_mask = self._act("&Clear mask", self.clear_mask, shortcut="Shift+F3")
+        self.act_save_detector_mask = self._act("Save mask as &detector mask…", self.save_detector_mask,
+                                                shortcut="Ctrl+Shift+M",
+                                                tip="Keep the mask as the camera's own: it is applied to every "
+                                                "pattern of this size opened later")
         self.act_cancel = self._act("Cancel running work", lambda: self.runner.cancel(), shortcut="Ctrl+.")
         self.tool_group = QActionGroup(self)
         self.tool_actions: dict[str, QAction] = {}
@@ -332,7 +342,7 @@ class MainWindow(QMainWindow):
         for a in self.tool_actions.values():
             m.addAction(a)
         m = mb.addMenu("&Analyse")
-        for a in (self.act_auto_mask, self.act_clear_mask, None, self.act_centre_rings, self.act_centre_friedel,
+        for a in (self.act_auto_mask, self.act_clear_mask, self.act_save_detector_mask, None, self.act_centre_rings, self.act_centre_friedel,
                   None, self.act_calibrate, self.act_find_spots, self.act_search, self.act_next_candidate,
                   self.act_prev_candidate, self.act_identify, None,
                   self.act_cancel):
@@ -909,6 +919,8 @@ class MainWindow(QMainWindow):
         self._start_auto_mask(session, then=then, keep_phases=keep_phases)
 
     def _start_auto_mask(self, session: Session, *, then=None, keep_phases=()) -> None:
+        from saedkit.core.detector_mask import find_detector_mask
+
         data = session.image.data
         sat = session.image.saturation_value
 
@@ -916,12 +928,15 @@ class MainWindow(QMainWindow):
             from saedkit.core.detection.masks import find_auto_mask
 
             mask = find_auto_mask(data, saturation_value=sat)
+            detector = find_detector_mask(_detector_mask_folder(), data.shape)
+            if detector is not None:
+                mask = mask | detector.mask
             screen_buffer = np.empty(mask.shape, dtype=np.uint32)
             screen_buffer.fill(0)  # paged in here, not on the GUI thread
-            return mask, screen_buffer
+            return mask, screen_buffer, detector
 
         def done(result):
-            mask, screen_buffer = result
+            mask, screen_buffer, detector = result
             if self.session is not session:
                 return
             self.view.mask_layer.adopt_buffer(screen_buffer)
@@ -931,7 +946,10 @@ class MainWindow(QMainWindow):
                 session.set_phases(list(keep_phases), label="Keep the phases of the previous pattern")
                 session.mark_saved()
             n = int(np.count_nonzero(mask))
-            if n:
+            if detector is not None:
+                self.show_status(f"Mask: {n} pixels excluded, {detector.n_excluded} of them by the detector mask of "
+                                 f"'{detector.camera}'.")
+            elif n:
                 self.show_status(f"Automatic mask: {n} pixels excluded (saturated or under the beam stop).")
             if then is not None:
                 then(session)
@@ -1257,6 +1275,27 @@ class MainWindow(QMainWindow):
                 self.show_status(f"Automatic mask: {int(mask.sum())} pixels.")
 
         self._submit("mask", "Masking saturated pixels and the beam stop", work, done)
+
+    def save_detector_mask(self, camera: str | None = None) -> Path | None:
+        """Save the current mask as the detector mask of a camera (asks its name): reused for its patterns."""
+        from PySide6.QtWidgets import QInputDialog
+
+        from saedkit.core.detector_mask import detector_mask_path, write_detector_mask
+
+        s = self._require()
+        if not s.mask.any():
+            raise InputError("the mask is empty: mask the detector's gaps, hot pixels or beam stop first")
+        if camera is None:
+            camera, ok = QInputDialog.getText(self, "Save detector mask",
+                                              "Camera name (the mask is reused for its patterns of "
+                                              f"{s.image.shape[1]}×{s.image.shape[0]} px):", text="camera")
+            if not ok:
+                return None
+        path = detector_mask_path(_detector_mask_folder(), camera, s.image.shape)
+        write_detector_mask(path, s.mask, camera=camera)
+        self.show_status(f"Saved the detector mask of '{camera}' ({int(s.mask.sum())} px) to {path}; "
+                         "it is applied to every pattern of this size opened from now on.")
+        return path
 
     def clear_mask(self) -> None:
         self._require().set_mask(None, label="Clear mask")
