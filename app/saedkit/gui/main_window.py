@@ -53,6 +53,7 @@ from saedkit.gui.icons import icon
 from saedkit.gui.panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, RingPhasesPanel, SearchPanel
 from saedkit.gui.tools import TOOL_CLASSES, describe_pair
 from saedkit.gui.view import LAYER_NAMES, PatternView, calculate_argb_image
+from saedkit.gui.legend import MarkerLegend
 from saedkit.gui.magnifier import Magnifier
 from saedkit.gui.plot import CurvePlot
 from saedkit.gui.widgets import guard_wheel
@@ -174,6 +175,8 @@ class MainWindow(QMainWindow):
         self.notice = NoticeBar(self.view)
         self.notice.attach_to(self.view)
         self.magnifier = Magnifier(self.view.viewport())
+        self.legend = MarkerLegend(self.view.viewport())
+        self.view.viewport().installEventFilter(self)
         self.tools = {cls.name: cls(self) for cls in TOOL_CLASSES}
         self.tool = None
 
@@ -283,6 +286,9 @@ class MainWindow(QMainWindow):
         self.act_fitted_grid = self._act("Candidate grid with its &fitted K", lambda on: self.refresh_overlays(),
                                          checkable=True, tip="Draw the chosen candidate's grid with the camera "
                                          "constant its fit found, not the calibration's (calibrated patterns)")
+        self.act_legend = self._act("Marker &legend", lambda on: self._refresh_legend(), shortcut="Ctrl+L",
+                                    checkable=True, tip="Show the key of the marks in the corner of the pattern")
+        self.act_legend.setChecked(True)
         self.act_magnifier = self._act("&Magnifier", lambda on: None if on else self.magnifier.hide(),
                                        shortcut="Ctrl+M", checkable=True,
                                        tip="Show the pixels around the cursor enlarged beside it (Ctrl+M)")
@@ -332,6 +338,7 @@ class MainWindow(QMainWindow):
         ov.addAction(self.act_fitted_grid)
         m.addSeparator()
         m.addAction(self.act_magnifier)
+        m.addAction(self.act_legend)
         m.addAction(self.act_table)
         m.addAction(self.act_pattern_only)
         panels = m.addMenu("&Panels")
@@ -649,6 +656,7 @@ class MainWindow(QMainWindow):
         self._refresh_rings()
         k, _, _, source = s.camera_constant
         v.camera_constant_px_A = k if source != "none" and math.isfinite(k) else None
+        self._refresh_legend()
         v.viewport().update()
 
     def candidate_grid_xy(self, s: Session, cand) -> np.ndarray:
@@ -678,6 +686,31 @@ class MainWindow(QMainWindow):
         # camera equation R·d = K (DESIGN.md): the same direction, the radius of the calibration
         scale = np.where(ok, k_cal / np.where(ok, d, 1.0) / np.where(ok, r, 1.0), 1.0)
         return c0 + (ideal * scale[:, None]) @ fwd.T
+
+    def _refresh_legend(self) -> None:
+        """The legend lists the kinds of marks on show."""
+        s, v = self.session, self.view
+        kinds = []
+        if s is not None:
+            if s.centre is not None and v.visible.get("centre", True):
+                kinds.append("centre")
+            if v.visible.get("spots", True):
+                origins = set(s.spot_origins)
+                kinds += [k for k, o in (("spot_auto", "auto"), ("spot_manual", "manual")) if o in origins]
+            if v.predicted_layer.count and v.visible.get("predicted", True):
+                kinds.append("predicted")
+                if np.any(v.predicted_layer.forbidden):
+                    kinds.append("forbidden")
+            if v.ring_layer.count and v.visible.get("rings", True):
+                kinds.append("rings")
+            if s.mask.any() and v.visible.get("mask", True):
+                kinds.append("mask")
+        self.legend.set_kinds(kinds if self.act_legend.isChecked() else [])
+
+    def eventFilter(self, obj, event) -> bool:  # noqa: N802
+        if obj is self.view.viewport() and event.type() == event.Type.Resize:
+            self.legend.place()
+        return False
 
     def _refresh_rings(self) -> None:
         s = self.session
@@ -733,6 +766,7 @@ class MainWindow(QMainWindow):
 
     def set_layer_visible(self, name: str, on: bool) -> None:
         self.view.set_layer_visible(name, on)
+        self._refresh_legend()
         a = self.layer_actions.get(name)
         if a is not None and a.isChecked() != on:
             a.setChecked(on)

@@ -33,6 +33,7 @@ import numpy as np
 from saedkit.core._atomic import write_with_atomic
 from saedkit.core.distortion import NO_DISTORTION, Ellipse
 from saedkit.core.errors import InputError
+from saedkit.core.marker_style import MARKER_COLOURS
 from saedkit.report._common import (
     describe_unindexed,
     finite,
@@ -76,15 +77,15 @@ FIGURE_DPI = 100
 #: Long side of the figure in pixels when ``size_px`` is not given: the image's, within these limits.
 _DEFAULT_SIZE_LIMITS_PX = (800, 1600)
 
-# Colours of saedkit's overlays (chosen to stay apart from each other and from grey).
+# Colours of saedkit's overlays, the same as on screen (core/marker_style.py): the report shows what the user saw
 COLOURS = {
-    "spot": "#ffa630",  # measured spots: amber
-    "grid": "#4dd2ff",  # predicted reflections: sky blue
-    "forbidden": "#d291ff",  # kinematically forbidden reflections: lilac
-    "centre": "#ff4d6d",  # centre: coral red
-    "ring": "#8ee05a",  # fitted rings: green
-    "ellipse": "#ffe45c",  # distortion axes: yellow
-    "mask": "#2f5bff",  # excluded pixels: blue tint
+    "spot": MARKER_COLOURS["spot_auto"],  # measured spots
+    "grid": MARKER_COLOURS["predicted"],  # predicted reflections
+    "forbidden": MARKER_COLOURS["forbidden"],  # kinematically forbidden reflections
+    "centre": MARKER_COLOURS["centre"],
+    "ring": MARKER_COLOURS["rings"],  # fitted rings
+    "ellipse": MARKER_COLOURS["ellipse"],  # distortion axes
+    "mask": MARKER_COLOURS["mask"],  # excluded pixels: blue tint
     "text": "#ffffff",
     "outline": "#000000",
 }
