@@ -456,7 +456,8 @@ def calculate_sha256(path: str | os.PathLike, *, chunk_bytes: int = 1 << 20) -> 
 
 
 def read_pattern(
-    path: str | os.PathLike, *, page: int = 0, max_bytes: int | None = None
+    path: str | os.PathLike, *, page: int = 0, max_bytes: int | None = None,
+    mask_nonfinite: bool = False,
 ) -> PatternImage:
     """Read a diffraction pattern from an image file.
 
@@ -472,6 +473,10 @@ def read_pattern(
         Most memory the image may take while read; default
         :func:`memory_limit_bytes`. Checked from the header before the pixels
         are read.
+    mask_nonfinite : bool
+        Open an image with NaN or infinite pixels (up to half of them): they
+        are set to the median of the others and excluded by the returned
+        image's ``mask``. Default False: such an image is refused.
 
     Returns
     -------
@@ -547,6 +552,12 @@ def read_pattern(
     if meta.pop("colour", False):
         raw = _to_grey(raw)
     raw = _squeeze_leading(raw)
+    bad = None
+    if mask_nonfinite and raw.dtype.kind == "f" and raw.ndim == 2:
+        finite = np.isfinite(raw)
+        if not finite.all() and finite.sum() >= raw.size / 2:
+            bad = ~finite
+            raw = np.where(finite, raw, np.median(raw[finite]))
     _check_pixels(raw, where, ImageReadError)
     data = np.asarray(raw, dtype=np.float32)
     if data is raw or not data.flags.owndata:
@@ -562,6 +573,7 @@ def read_pattern(
         camera_length_mm=meta.get("camera_length_mm"),
         page=page,
         saturation_value=_saturation_for(original_dtype),
+        mask=bad,
     )
 
 

@@ -108,6 +108,23 @@ def _phases_to_search(session: Session) -> list[str]:
     return names
 
 
+def _count_frames(path) -> int:
+    """How many frames (pages) a TIFF file holds; 1 for other files or when it cannot tell."""
+    p = Path(path)
+    if p.suffix.lower() not in (".tif", ".tiff"):
+        return 1
+    try:
+        import tifffile
+
+        with tifffile.TiffFile(p) as tf:
+            series = tf.series[0] if tf.series else None
+            if series is not None and len(series.shape) >= 3 and "Y" in series.axes and series.axes[-1] != "S":
+                return int(np.prod(series.shape[:-2]))
+            return max(len(tf.pages), 1)
+    except Exception:  # noqa: BLE001 - counting frames is a courtesy; the reader reports real faults
+        return 1
+
+
 def _detector_mask_folder() -> Path:
     from saedkit.core.workflow.session import data_dir
 
@@ -900,21 +917,28 @@ class MainWindow(QMainWindow):
         else:
             self.open_image_file(p, then=then)
 
-    def open_image_file(self, path: Path, *, then: Callable[[Session], None] | None = None) -> None:
+    def open_image_file(self, path: Path, *, then: Callable[[Session], None] | None = None, page: int = 0) -> None:
         from saedkit.core.imageio import read_pattern
 
         settings = self.display
 
         def work(progress, should_stop):
-            image = read_pattern(path)
+            image = read_pattern(path, page=page, mask_nonfinite=True)
             progress(1, 2)
-            screen = _render_screen(image.data, settings)
+            screen = _render_screen(image.data, settings, mask=image.mask)
             progress(2, 2)
-            return image, screen
+            return image, screen, _count_frames(path)
 
         def done(result):
-            image, screen = result
+            image, screen, n_frames = result
             self._open_image(image, screen, then=then)
+            n_bad = 0 if image.mask is None else int(np.count_nonzero(image.mask))
+            if n_bad:
+                self.notify(f"{Path(path).name}: {n_bad} pixels are NaN or infinite; they are masked (shown in the "
+                            "mask colour) and left out of every measurement.", "warning")
+            if n_frames > 1:
+                self.notify(f"{Path(path).name} holds {n_frames} frames; frame {page + 1} is shown.", "info",
+                            actions=[("Choose frame…", lambda: self.choose_frame(path, n_frames, page))])
 
         def failed(exc):
             self._task_error(exc)
@@ -923,6 +947,15 @@ class MainWindow(QMainWindow):
 
         self.runner.submit("open", f"Reading {Path(path).name}", work,
                            on_done=lambda r: self.guard(lambda: done(r)), on_error=failed)
+
+    def choose_frame(self, path, n_frames: int, current: int = 0) -> None:
+        """Ask which frame (1 … n) of a multi-frame file to show, and open it."""
+        from PySide6.QtWidgets import QInputDialog
+
+        frame, ok = QInputDialog.getInt(self, "Choose a frame", f"Frame (1 to {n_frames}):", current + 1, 1,
+                                        n_frames)
+        if ok and self._confirm_discard():
+            self.open_image_file(Path(path), page=frame - 1)
 
     def open_image(self, image, *, then: Callable[[Session], None] | None = None) -> None:
         """Show a PatternImage already in memory (e.g. from a script)."""
@@ -957,11 +990,14 @@ class MainWindow(QMainWindow):
 
         data = session.image.data
         sat = session.image.saturation_value
+        read_mask = session.image.mask
 
         def work(progress, should_stop):
             from saedkit.core.detection.masks import find_auto_mask
 
             mask = find_auto_mask(data, saturation_value=sat)
+            if read_mask is not None:
+                mask = mask | read_mask  # pixels the file itself could not give (NaN, infinite)
             detector = find_detector_mask(_detector_mask_folder(), data.shape)
             if detector is not None:
                 mask = mask | detector.mask
