@@ -50,6 +50,7 @@ from saedkit.gui import settings as app_prefs
 from saedkit.gui.dialogs import NewPhaseDialog, NoticeBar, PreferencesDialog, SaveCalibrationDialog, show_details
 from saedkit.gui.display import DisplaySettings, calculate_colour_table, calculate_display_image
 from saedkit.gui.icons import icon
+from saedkit.gui.panels import fmt_sigma
 from saedkit.gui.panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, RingPhasesPanel, SearchPanel
 from saedkit.gui.tools import TOOL_CLASSES, describe_pair
 from saedkit.gui.view import LAYER_NAMES, PatternView, calculate_argb_image
@@ -1389,7 +1390,7 @@ class MainWindow(QMainWindow):
                 s.set_ring_fit(fit)
                 s.set_centre(fit.centre)
             self.notify(f"Centre from {len(fit.rings)} rings: ({fit.centre.x:.2f}, {fit.centre.y:.2f}) ± "
-                        f"({fit.centre.sigma_x:.2f}, {fit.centre.sigma_y:.2f}) px.", "success")
+                        f"({fmt_sigma(fit.centre.sigma_x)}, {fmt_sigma(fit.centre.sigma_y)}) px.", "success")
 
         self._submit("centre", "Fitting the rings", work, done)
 
@@ -1407,7 +1408,7 @@ class MainWindow(QMainWindow):
                 return
             s.set_centre(c, label="Centre from Friedel pairs")
             self.notify(f"Centre from {c.n_used} Friedel pairs: ({c.x:.2f}, {c.y:.2f}) ± "
-                        f"({c.sigma_x:.2f}, {c.sigma_y:.2f}) px.", "success")
+                        f"({fmt_sigma(c.sigma_x)}, {fmt_sigma(c.sigma_y)}) px.", "success")
 
         self._submit("centre", "Finding the centre", work, done)
 

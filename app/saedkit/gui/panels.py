@@ -7,6 +7,8 @@ Panels show the session and send edits back through the main window
 from __future__ import annotations
 
 import math
+
+import numpy as np
 from typing import Any
 
 from PySide6.QtCore import QAbstractTableModel, QModelIndex, QSortFilterProxyModel, Qt, Signal
@@ -79,18 +81,33 @@ class IndicesDelegate(QStyledItemDelegate):
         painter.restore()
 
 __all__ = ["DisplayPanel", "CalibrationPanel", "PhasesPanel", "SearchPanel", "RingPhasesPanel",
-           "MeasurementsPanel", "MeasurementModel", "fmt_pm"]
+           "MeasurementsPanel", "MeasurementModel", "fmt_pm", "fmt_sigma"]
 
 
 def fmt_pm(v, s, digits: int = 4) -> str:
-    """'v ± s' with at least ``digits`` decimals, more when needed to show two significant digits of s."""
+    """'v ± s' with two significant figures of s and v rounded to the same place (never "± 0.00").
+
+    ``digits``: decimals of v when s is unknown or zero.
+    """
     if v is None or not math.isfinite(v):
         return "—"
     if s is None or not math.isfinite(s) or s <= 0:
         return f"{v:.{digits}f}"
-    need = 1 - int(math.floor(math.log10(s)))
-    d = min(max(digits, need), 8)
+    d = min(max(1 - int(math.floor(math.log10(s))), 0), 10)
+    if d == 0:  # σ ≥ 10: two significant figures by rounding to tens, hundreds, …
+        step = 10 ** (int(math.floor(math.log10(s))) - 1)
+        return f"{round(v / step) * step:.0f} ± {round(s / step) * step:.0f}"
     return f"{v:.{d}f} ± {s:.{d}f}"
+
+
+def fmt_sigma(s) -> str:
+    """An uncertainty with two significant figures ("0.0041", "1.3", "25")."""
+    if s is None or not math.isfinite(s):
+        return "—"
+    if s == 0:
+        return "0"
+    d = max(1 - int(math.floor(math.log10(abs(s)))), 0)
+    return f"{s:.{d}f}" if d else f"{float(f'{s:.2g}'):.0f}"
 
 
 def _spin(lo: float, hi: float, value: float, step: float, decimals: int, suffix: str = "") -> QDoubleSpinBox:
@@ -568,6 +585,8 @@ class SearchPanel(_Panel):
     """Find spots, then search the zone axes of the ticked phases; the ranked candidates."""
 
     COLUMNS = ["#", "phase", "zone", "score", "Δd (%)", "Δangle (°)", "rotation (°)", "K (px·Å)", "spots"]
+    COMPARE_COLUMNS = ["spot", "hkl", "d meas. (Å)", "d pred. (Å)", "Δd (%)", "∠g₁ meas. (°)", "∠g₁ pred. (°)",
+                       "Δ∠ (°)"]
 
     def __init__(self, ctx, parent=None) -> None:
         super().__init__(ctx, parent)
@@ -610,6 +629,19 @@ class SearchPanel(_Panel):
         self.table.setItemDelegateForColumn(2, IndicesDelegate("[]", self.table))
         self.table.setMinimumHeight(150)
         lay.addWidget(self.table, 1)
+        self.compare_label = QLabel("Chosen candidate, measured against predicted (angles to the shortest g₁):")
+        self.compare_label.setWordWrap(True)
+        lay.addWidget(self.compare_label)
+        self.compare = QTableWidget(0, len(self.COMPARE_COLUMNS))
+        self.compare.setHorizontalHeaderLabels(self.COMPARE_COLUMNS)
+        self.compare.verticalHeader().setVisible(False)
+        self.compare.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        self.compare.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
+        self.compare.setItemDelegateForColumn(1, IndicesDelegate("()", self.compare))
+        self.compare.setMinimumHeight(120)
+        lay.addWidget(self.compare, 1)
+        self.compare_label.hide()
+        self.compare.hide()
         self.notes = QLabel("")
         self.notes.setWordWrap(True)
         self.notes.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
@@ -690,8 +722,64 @@ class SearchPanel(_Panel):
                 if c is not None:
                     notes += list(c.notes)
             self.notes.setText("\n".join(notes))
+            self._show_comparison(s)
         finally:
             self._updating = False
+
+    def comparison_rows(self, s) -> list[tuple]:
+        """Measured against predicted for the chosen candidate: one row per indexed spot.
+
+        (spot number, hkl, d measured, d predicted, Δd %, angle to g₁ measured, predicted, Δangle), with g₁
+        the shortest indexed g; angles from the centre (measured) and from the candidate's grid (predicted).
+        """
+        c = None if s is None else s.candidate
+        if c is None or s.centre is None:
+            return []
+        lat = s.match.lattice
+        c0 = np.asarray(lat.centre_xy if lat is not None else (s.centre.x, s.centre.y), float)
+        pred = {tuple(int(v) for v in p.hkl): p for p in c.predicted}
+        sxy = s.spots_xy
+        rows = []
+        for sp in c.spots:
+            if sp.hkl is None or tuple(sp.hkl) not in pred:
+                continue
+            p = pred[tuple(sp.hkl)]
+            number = int(np.argmin(np.hypot(*(sxy - [sp.x, sp.y]).T))) + 1 if len(sxy) else 0
+            rows.append([number, tuple(sp.hkl), sp.d_A, p.d_A, sp.d_error_pct,
+                         np.array([sp.x, sp.y]) - c0, np.array([p.x, p.y]) - c0])
+        if not rows:
+            return []
+        ref = min(rows, key=lambda r: float(np.hypot(*r[5])))
+        out = []
+        for r in rows:
+            am = _angle_between(r[5], ref[5])
+            ap = _angle_between(r[6], ref[6])
+            out.append((r[0], r[1], r[2], r[3], r[4], am, ap, am - ap))
+        return sorted(out, key=lambda r: r[0])
+
+    def _show_comparison(self, s) -> None:
+        rows = self.comparison_rows(s)
+        self.compare.setRowCount(len(rows))
+        for i, (n, hkl, dm, dp, dd, am, ap, da) in enumerate(rows):
+            vals = [str(n), format_indices(hkl), f"{dm:.4f}", f"{dp:.4f}", _pct(dd), f"{am:.1f}", f"{ap:.1f}",
+                    f"{da:+.1f}"]
+            for j, v in enumerate(vals):
+                item = QTableWidgetItem(v)
+                if j == 1:
+                    item.setData(INDICES_ROLE, tuple(int(x) for x in hkl))
+                else:
+                    item.setTextAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
+                self.compare.setItem(i, j, item)
+        self.compare_label.setVisible(bool(rows))
+        self.compare.setVisible(bool(rows))
+
+
+def _angle_between(a, b) -> float:
+    """Angle between two vectors, degrees (0–180)."""
+    na, nb = float(np.hypot(*a)), float(np.hypot(*b))
+    if na == 0 or nb == 0:
+        return 0.0
+    return math.degrees(math.acos(max(-1.0, min(1.0, float(np.dot(a, b)) / (na * nb)))))
 
 
 # --------------------------------------------------------------------------- phases from rings
@@ -1030,7 +1118,7 @@ class MeasurementsPanel(_Panel):
         else:
             ktxt = "no camera constant: spacings need a calibration"
         ctxt = "no centre" if s.centre is None else f"centre ({s.centre.x:.2f}, {s.centre.y:.2f}) ± " \
-            f"({s.centre.sigma_x:.2f}, {s.centre.sigma_y:.2f}) px, {s.centre.method}"
+            f"({fmt_sigma(s.centre.sigma_x)}, {fmt_sigma(s.centre.sigma_y)}) px, {s.centre.method}"
         self.summary.setText(f"{len(rows)} spots · {ctxt} · {ktxt}")
 
     def _selection(self, *_: Any) -> None:
