@@ -12,7 +12,7 @@ __all__ = ["MarkerLegend"]
 
 
 class MarkerLegend(QWidget):
-    """A key of the overlay marks, a child of the view's viewport (bottom-left corner)."""
+    """A key of the overlay marks, a child of the view's viewport (bottom-right corner)."""
 
     def __init__(self, parent: QWidget) -> None:
         super().__init__(parent)
@@ -36,8 +36,9 @@ class MarkerLegend(QWidget):
         self.update()
 
     def place(self) -> None:
+        """Bottom-right corner (the scale bar has the bottom-left one)."""
         par = self.parentWidget()
-        self.move(8, max(par.height() - self.height() - 8, 0))
+        self.move(max(par.width() - self.width() - 8, 0), max(par.height() - self.height() - 8, 0))
 
     def entries(self) -> list[str]:
         return [t for k, _, t in MARKER_LEGEND if k in self.kinds]

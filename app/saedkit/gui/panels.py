@@ -100,6 +100,14 @@ def fmt_pm(v, s, digits: int = 4) -> str:
     return f"{v:.{d}f} ± {s:.{d}f}"
 
 
+def _signed(v, decimals: int = 3) -> str:
+    """A signed residual ("+0.001", "0.000" rather than "-0.000"); a dash when unknown."""
+    if v is None or not math.isfinite(v):
+        return "—"
+    text = f"{v:+.{decimals}f}"
+    return text[1:] if float(text) == 0 else text
+
+
 def fmt_sigma(s) -> str:
     """An uncertainty with two significant figures ("0.0041", "1.3", "25")."""
     if s is None or not math.isfinite(s):
@@ -452,15 +460,20 @@ class CalibrationPanel(_Panel):
         for w in getattr(cal, "warnings", ()) or ():
             lines.append(f"<span style='color:#e0a030'>⚠ {w}</span>")
         self.result.setText("<br>".join(lines))
+        # enough decimals for two significant figures of σ (never "± 0.00")
+        sig = float(sk or 0.0)
+        dec = min(max(2, 1 - int(math.floor(math.log10(sig)))), 6) if sig > 0 else 2
+        self.k_sigma.setDecimals(dec)
+        self.k_value.setDecimals(dec)
         self.k_value.setValue(k)
-        self.k_sigma.setValue(float(sk or 0.0))
+        self.k_sigma.setValue(sig)
         rings = list(getattr(cal, "rings", ()) or ())
         self.table.setRowCount(len(rings))
         for i, r in enumerate(rings):
             hkl = getattr(r, "hkl", None)
             vals = [format_indices(hkl) if hkl is not None else "—",
                     f"{getattr(r, 'd_A', math.nan):.4f}", f"{getattr(r, 'radius_px', math.nan):.2f}",
-                    f"{getattr(r, 'residual_px', math.nan):+.3f}", f"{getattr(r, 'residual_pct', math.nan):+.3f}"]
+                    _signed(getattr(r, 'residual_px', math.nan)), _signed(getattr(r, 'residual_pct', math.nan))]
             for j, v in enumerate(vals):
                 item = QTableWidgetItem(v)
                 if j == 0 and hkl is not None:
