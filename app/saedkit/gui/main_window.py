@@ -9,6 +9,7 @@ in the notice bar above the pattern; the program never stops on them.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import os
 import sys
@@ -1164,6 +1165,9 @@ class MainWindow(QMainWindow):
             raise InputError(f"{out}: exists and is not a folder; choose a folder name for the report")
         out.mkdir(parents=True, exist_ok=True)
         analysis = s.to_analysis()
+        # the report draws the pattern with the display the user sees (curve, limits, colours)
+        analysis = dataclasses.replace(analysis, parameters={**dict(analysis.parameters or {}),
+                                                             "display": self.display.to_dict()})
 
         def work(progress, should_stop):
             return write_report_bundle(analysis, out, progress=progress)
