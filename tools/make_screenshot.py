@@ -41,10 +41,19 @@ def _simulated_pattern(folder: Path) -> tuple[Path, float, tuple[float, float]]:
     return path, k, truth.centre_xy
 
 
-def make_screenshot(out: str | os.PathLike, *, simulated: bool = False, size: tuple[int, int] = (1500, 950)) -> Path:
-    """Render the window (pattern, calibration, best candidate's grid) to ``out``; returns the path."""
+def make_screenshot(out: str | os.PathLike, *, simulated: bool = False, size: tuple[int, int] = (1600, 1000),
+                    scene: str = "grain") -> Path:
+    """Render the window to ``out``; returns the path.
+
+    ``scene``: "grain" (pattern, calibration, best candidate's grid, the table) or "film" (the demo gold film
+    calibrated: rings with their labels, the radial profile against d).
+    """
     if not os.environ.get("DISPLAY") and not os.environ.get("WAYLAND_DISPLAY"):
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    # the demo writes a calibration and the window its layout: keep them out of the user's own folders
+    for var in ("SAEDKIT_DATA_DIR", "SAEDKIT_CONFIG_DIR"):
+        if not os.environ.get(var):
+            os.environ[var] = tempfile.mkdtemp(prefix="saedkit-shot-")
     from saedkit.core.detection.centre import manual_centre
     from saedkit.gui.app import make_application
     from saedkit.gui.main_window import MainWindow
@@ -55,6 +64,15 @@ def make_screenshot(out: str | os.PathLike, *, simulated: bool = False, size: tu
     window.show()
     app.processEvents()
     try:
+        if scene == "film":
+            window.open_demo("film")
+            window.calibrate()
+            window.calibration_panel.plot_axis.setCurrentText("d (Å)")
+            window.docks["calibration"].raise_()
+            window.set_tool("pan")
+            for _ in range(3):
+                app.processEvents()
+            return _save(window, out)
         if simulated:
             tmp = Path(tempfile.mkdtemp(prefix="saedkit-shot-"))
             path, k, centre = _simulated_pattern(tmp)
@@ -74,14 +92,13 @@ def make_screenshot(out: str | os.PathLike, *, simulated: bool = False, size: tu
         if s.candidate is None:
             raise RuntimeError(f"no candidate to show: {window.notices[-3:]}")
         window.set_tool("spot")
+        window.show_table(True)
         window.docks["search"].raise_()
         for _ in range(3):
             app.processEvents()
-        out = Path(out)
-        out.parent.mkdir(parents=True, exist_ok=True)
-        if not window.grab().save(str(out)):
-            raise RuntimeError(f"could not write {out}")
-        return out
+        window.view.fit()  # the table took some height: fit the pattern again
+        app.processEvents()
+        return _save(window, out)
     finally:
         if window.session is not None:
             window.session.mark_saved()
@@ -89,12 +106,22 @@ def make_screenshot(out: str | os.PathLike, *, simulated: bool = False, size: tu
         app.processEvents()
 
 
+def _save(window, out) -> Path:
+    out = Path(out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    if not window.grab().save(str(out)):
+        raise RuntimeError(f"could not write {out}")
+    return out
+
+
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     p.add_argument("out", nargs="?", default=str(REPO / "docs" / "screenshot.png"))
     p.add_argument("--simulated", action="store_true", help="a simulated Si [011] pattern instead of the demo")
+    p.add_argument("--scene", choices=("grain", "film"), default="grain",
+                   help="grain: the indexed unknown grain; film: the calibrated gold film")
     args = p.parse_args(argv)
-    path = make_screenshot(args.out, simulated=args.simulated)
+    path = make_screenshot(args.out, simulated=args.simulated, scene=args.scene)
     print(path)
     return 0
 

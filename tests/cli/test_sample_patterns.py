@@ -48,7 +48,6 @@ def test_rings_on_the_gold_film(capsys):
 
 
 def test_calibrate_index_spots_with_the_saved_calibration(capsys, calibration_name):
-    t = _truth("kb7_au_film")
     rec = _run(capsys, ["calibrate", str(SAMPLES / "kb7_au_film.tif"), "--standard", "Au", "--kv", "200",
                         "--save", calibration_name, "--json"])
     # the scenario (sample_patterns/README.md): 200 kV, true camera length 2.7 % over the nominal

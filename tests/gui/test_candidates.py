@@ -57,3 +57,28 @@ def test_grid_drawn_with_the_calibration_k_and_candidates_flicked(window, open_p
     window.act_prev_candidate.trigger()
     assert s.chosen_candidate == first
     assert "]" in window.act_next_candidate.toolTip()
+    # measured against predicted for the chosen one: d against the Cu spacings a/√(h²+k²+l²) (textbook), the
+    # angles against those of the (hkl) themselves in a cubic crystal (textbook: cos φ = h₁·h₂ / |h₁||h₂|)
+    rows = window.search_panel.comparison_rows(s)
+    assert len(rows) >= 4 and window.search_panel.compare.rowCount() == len(rows)
+    a_cu = 3.6150  # Å (REFERENCES.md)
+    ref = min(rows, key=lambda r: -r[2])[1]  # the largest d: the shortest g
+    for n, hkl, d_meas, d_pred, dd, ang_meas, ang_pred, dang in rows:
+        assert d_pred == pytest.approx(a_cu / np.sqrt(np.dot(hkl, hkl)), rel=1e-3)
+        assert d_meas == pytest.approx(d_pred, rel=0.025)  # the calibration is 2 % off
+        cos = np.dot(hkl, ref) / np.sqrt(np.dot(hkl, hkl) * np.dot(ref, ref))
+        assert ang_pred == pytest.approx(np.degrees(np.arccos(np.clip(cos, -1, 1))), abs=0.05)
+        assert abs(dang) < 1.5
+        assert 1 <= n <= len(s.spots)
+
+
+def test_uncertainties_show_two_significant_figures_of_sigma():
+    from saedkit.gui.panels import fmt_pm, fmt_sigma
+
+    # rounding rule for reported uncertainties: σ to two significant figures, the value to the same place
+    # (common practice)
+    assert fmt_pm(2.34567, 0.0123) == "2.346 ± 0.012"
+    assert fmt_pm(380.123, 0.00041) == "380.12300 ± 0.00041"
+    assert fmt_pm(1234.5, 37.0) == "1234 ± 37" and fmt_pm(1234.5, 370.0) == "1230 ± 370"
+    assert fmt_pm(1.5, 0.0, 3) == "1.500"
+    assert fmt_sigma(0.00412) == "0.0041" and fmt_sigma(1.26) == "1.3" and fmt_sigma(25.4) == "25"

@@ -512,6 +512,7 @@ def calculate_sha256(path: str | os.PathLike, *, chunk_bytes: int = 1 << 20) -> 
 def read_pattern(
     path: str | os.PathLike, *, page: int = 0, max_bytes: int | None = None,
     saturation_value: float | None = None,
+    mask_nonfinite: bool = False,
 ) -> PatternImage:
     """Read a diffraction pattern from an image file.
 
@@ -530,6 +531,10 @@ def read_pattern(
     saturation_value : float, optional
         The detector's saturation level, when the user knows it; by default
         :func:`find_saturation_value` (the data's real bit depth).
+    mask_nonfinite : bool
+        Open an image with NaN or infinite pixels (up to half of them): they
+        are set to the median of the others and excluded by the returned
+        image's ``mask``. Default False: such an image is refused.
 
     Returns
     -------
@@ -611,12 +616,18 @@ def read_pattern(
     original_dtype = raw.dtype
     if saturation_value is not None:
         saturation_value = check_positive("saturation_value", saturation_value)
+    bad = None
     try:
         if meta.pop("colour", False):
             raw = _to_grey(raw)
         raw = _squeeze_leading(raw)
         if raw.dtype == np.bool_:
             raw = raw.view(np.uint8)
+        if mask_nonfinite and raw.dtype.kind == "f" and raw.ndim == 2:
+            finite = np.isfinite(raw)
+            if not finite.all() and finite.sum() >= raw.size / 2:
+                bad = ~finite
+                raw = np.where(finite, raw, np.median(raw[finite]))
         _check_pixels(raw, where, ImageReadError)
         _check_float32_range(raw, where)
         saturation = saturation_value if saturation_value is not None else find_saturation_value(
@@ -637,6 +648,7 @@ def read_pattern(
         camera_length_mm=meta.get("camera_length_mm"),
         page=page,
         saturation_value=saturation,
+        mask=bad,
     )
 
 

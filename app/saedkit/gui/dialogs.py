@@ -110,9 +110,12 @@ class NoticeBar(QFrame):
         if host is None:
             return
         width = host.width()
-        lay = self.layout()
-        height = lay.heightForWidth(width) if lay.hasHeightForWidth() else -1
-        self.setGeometry(0, 0, width, max(height, self.sizeHint().height(), 24))
+        m = self.layout().contentsMargins()
+        others = self.symbol.sizeHint().width() + self.close_button.sizeHint().width() + self.buttons.sizeHint().width()
+        avail = max(width - others - m.left() - m.right() - 4 * self.layout().spacing(), 80)
+        text_h = self.text.heightForWidth(avail) if self.text.hasHeightForWidth() else self.text.sizeHint().height()
+        button_h = max(self.close_button.sizeHint().height(), self.buttons.sizeHint().height())
+        self.setGeometry(0, 0, width, max(text_h, button_h, 20) + m.top() + m.bottom())
 
     def eventFilter(self, obj: QObject, event: QEvent) -> bool:  # noqa: N802
         if obj is getattr(self, "_host", None) and event.type() == QEvent.Type.Resize:

@@ -9,6 +9,7 @@ in the notice bar above the pattern; the program never stops on them.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import os
 import sys
@@ -17,7 +18,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
-from PySide6.QtCore import QByteArray, Qt, QTimer
+from PySide6.QtCore import QByteArray, QPointF, Qt, QTimer
 from PySide6.QtGui import QAction, QActionGroup, QKeySequence
 from PySide6.QtWidgets import (
     QCheckBox,
@@ -34,6 +35,7 @@ from PySide6.QtWidgets import (
     QTabWidget,
     QToolBar,
     QToolButton,
+    QVBoxLayout,
     QWidget,
 )
 
@@ -49,9 +51,13 @@ from saedkit.gui import settings as app_prefs
 from saedkit.gui.dialogs import NewPhaseDialog, NoticeBar, PreferencesDialog, SaveCalibrationDialog, show_details
 from saedkit.gui.display import DisplaySettings, calculate_colour_table, calculate_display_image
 from saedkit.gui.icons import icon
+from saedkit.gui.panels import fmt_sigma
 from saedkit.gui.panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, RingPhasesPanel, SearchPanel
 from saedkit.gui.tools import TOOL_CLASSES, describe_pair
 from saedkit.gui.view import LAYER_NAMES, PatternView, calculate_argb_image
+from saedkit.gui.legend import MarkerLegend
+from saedkit.gui.magnifier import Magnifier
+from saedkit.gui.plot import CurvePlot
 from saedkit.gui.widgets import guard_wheel
 from saedkit.gui.workers import TaskRunner
 
@@ -102,6 +108,29 @@ def _phases_to_search(session: Session) -> list[str]:
 
         names = [e.name for e in LIBRARY]
     return names
+
+
+def _count_frames(path) -> int:
+    """How many frames (pages) a TIFF file holds; 1 for other files or when it cannot tell."""
+    p = Path(path)
+    if p.suffix.lower() not in (".tif", ".tiff"):
+        return 1
+    try:
+        import tifffile
+
+        with tifffile.TiffFile(p) as tf:
+            series = tf.series[0] if tf.series else None
+            if series is not None and len(series.shape) >= 3 and "Y" in series.axes and series.axes[-1] != "S":
+                return int(np.prod(series.shape[:-2]))
+            return max(len(tf.pages), 1)
+    except Exception:  # noqa: BLE001 - counting frames is a courtesy; the reader reports real faults
+        return 1
+
+
+def _detector_mask_folder() -> Path:
+    from saedkit.core.workflow.session import data_dir
+
+    return data_dir() / "detector_masks"
 
 
 def _warm_up_imports() -> None:
@@ -164,6 +193,9 @@ class MainWindow(QMainWindow):
         # the notice bar floats over the top of the view, so a message never moves the image
         self.notice = NoticeBar(self.view)
         self.notice.attach_to(self.view)
+        self.magnifier = Magnifier(self.view.viewport())
+        self.legend = MarkerLegend(self.view.viewport())
+        self.view.viewport().installEventFilter(self)
         self.tools = {cls.name: cls(self) for cls in TOOL_CLASSES}
         self.tool = None
 
@@ -173,7 +205,7 @@ class MainWindow(QMainWindow):
         self._build_toolbars()
         self._build_status()
         self.view.cursor_moved.connect(self._cursor_moved)
-        self.view.cursor_left.connect(lambda: self.readout.setText(""))
+        self.view.cursor_left.connect(self._cursor_left)
         self.view.files_dropped.connect(lambda paths: self.guard(lambda: self.open_path(paths[0])))
         self.runner.busy_changed.connect(self._busy_changed)
         self.runner.task_started.connect(lambda key, label: self._task_label.setText(label + "…"))
@@ -201,10 +233,11 @@ class MainWindow(QMainWindow):
                 a.setShortcuts([QKeySequence(s) for s in shortcut])
             else:
                 a.setShortcut(QKeySequence(shortcut))
-        if tip:
-            a.setStatusTip(tip)
-            a.setToolTip(tip)
         a.setCheckable(checkable)
+        keys = a.shortcut().toString(QKeySequence.SequenceFormat.NativeText)
+        tip = tip or text.replace("&", "").rstrip("…")
+        a.setStatusTip(tip)
+        a.setToolTip(f"{tip} ({keys})" if keys else tip)
         if checkable:
             a.toggled.connect(slot)
         else:
@@ -216,7 +249,7 @@ class MainWindow(QMainWindow):
         SK = QKeySequence.StandardKey
         self.act_open = self._act("&Open pattern…", self.open_dialog, icon_name="open", shortcut=SK.Open,
                                   tip="Open a diffraction pattern (TIFF, MRC, PNG, JPEG, NPY) or a saved session")
-        self.act_open_session = self._act("Open &session…", self.open_session_dialog)
+        self.act_open_session = self._act("Open &session…", self.open_session_dialog, shortcut="Ctrl+Shift+O")
         self.act_save = self._act("&Save session", self.save_session, icon_name="save", shortcut=SK.Save,
                                   tip="Save the whole session (centre, spots, mask, calibration, results) as one file")
         self.act_save_as = self._act("Save session &as…", self.save_session_as, shortcut=SK.SaveAs)
@@ -243,20 +276,27 @@ class MainWindow(QMainWindow):
         self.act_identify = self._act("&Identify phases from rings", self.identify_phases, shortcut="F8",
                                       tip="Rank the ticked phases (or the whole library) that explain the rings "
                                       "of a polycrystalline film; needs a camera constant")
-        self.act_centre_rings = self._act("Centre from &rings", self.centre_from_rings)
-        self.act_centre_friedel = self._act("Centre from Friedel &pairs", self.centre_from_friedel)
-        self.act_auto_mask = self._act("Automatic &mask", self.auto_mask,
+        self.act_centre_rings = self._act("Centre from &rings", self.centre_from_rings, shortcut="Shift+F4",
+                                          tip="Fit the rings and take their common centre")
+        self.act_centre_friedel = self._act("Centre from Friedel &pairs", self.centre_from_friedel, shortcut="F4",
+                                            tip="Find the centre from spots and their Friedel partners (g, −g)")
+        self.act_auto_mask = self._act("Automatic &mask", self.auto_mask, shortcut="F3",
                                        tip="Mask the saturated pixels and the beam stop")
-        self.act_clear_mask = self._act("&Clear mask", self.clear_mask)
+        self.act_clear_mask = self._act("&Clear mask", self.clear_mask, shortcut="Shift+F3")
+        self.act_save_detector_mask = self._act("Save mask as &detector mask…", self.save_detector_mask,
+                                                shortcut="Ctrl+Shift+M",
+                                                tip="Keep the mask as the camera's own: it is applied to every "
+                                                "pattern of this size opened later")
         self.act_cancel = self._act("Cancel running work", lambda: self.runner.cancel(), shortcut="Ctrl+.")
         self.tool_group = QActionGroup(self)
         self.tool_actions: dict[str, QAction] = {}
-        icons = {"pan": "pan", "centre": "centre", "spot": "spot", "ruler": "measure", "mask": "mask"}
+        icons = {"pan": "pan", "centre": "centre", "spot": "spot", "ruler": "measure", "mask": "mask",
+                 "profile": "measure"}
         for n, cls in enumerate(TOOL_CLASSES, start=2):
             a = QAction(icon(icons[cls.name]), cls.title, self)
             a.setCheckable(True)
             a.setShortcut(QKeySequence(f"Ctrl+{n}"))
-            a.setToolTip(f"{cls.title} tool — {cls.hint}")
+            a.setToolTip(f"{cls.title} tool (Ctrl+{n}) — {cls.hint}")
             a.setStatusTip(cls.hint)
             a.triggered.connect(lambda _=False, name=cls.name: self.set_tool(name))
             self.tool_group.addAction(a)
@@ -265,6 +305,12 @@ class MainWindow(QMainWindow):
         self.act_fitted_grid = self._act("Candidate grid with its &fitted K", lambda on: self.refresh_overlays(),
                                          checkable=True, tip="Draw the chosen candidate's grid with the camera "
                                          "constant its fit found, not the calibration's (calibrated patterns)")
+        self.act_legend = self._act("Marker &legend", lambda on: self._refresh_legend(), shortcut="Ctrl+L",
+                                    checkable=True, tip="Show the key of the marks in the corner of the pattern")
+        self.act_legend.setChecked(True)
+        self.act_magnifier = self._act("&Magnifier", lambda on: None if on else self.magnifier.hide(),
+                                       shortcut="Ctrl+M", checkable=True,
+                                       tip="Show the pixels around the cursor enlarged beside it (Ctrl+M)")
         self.act_pattern_only = self._act("&Pattern only", self.toggle_pattern_only, shortcut="F11", checkable=True,
                                           tip="Hide the panels and the tool options to give the whole window to the "
                                           "pattern (F11 again brings them back)")
@@ -310,6 +356,8 @@ class MainWindow(QMainWindow):
         ov.addSeparator()
         ov.addAction(self.act_fitted_grid)
         m.addSeparator()
+        m.addAction(self.act_magnifier)
+        m.addAction(self.act_legend)
         m.addAction(self.act_table)
         m.addAction(self.act_pattern_only)
         panels = m.addMenu("&Panels")
@@ -320,7 +368,7 @@ class MainWindow(QMainWindow):
         for a in self.tool_actions.values():
             m.addAction(a)
         m = mb.addMenu("&Analyse")
-        for a in (self.act_auto_mask, self.act_clear_mask, None, self.act_centre_rings, self.act_centre_friedel,
+        for a in (self.act_auto_mask, self.act_clear_mask, self.act_save_detector_mask, None, self.act_centre_rings, self.act_centre_friedel,
                   None, self.act_calibrate, self.act_find_spots, self.act_search, self.act_next_candidate,
                   self.act_prev_candidate, self.act_identify, None,
                   self.act_cancel):
@@ -336,6 +384,9 @@ class MainWindow(QMainWindow):
         m.addSeparator()
         a = m.addAction("&Mouse and keys")
         a.triggered.connect(self._show_help)
+        self.act_shortcuts = self._act("&Keyboard shortcuts", self.show_shortcuts, shortcut="F1",
+                                       tip="Every key of the program on one sheet")
+        m.addAction(self.act_shortcuts)
         a = m.addAction("&About saedkit")
         a.triggered.connect(self._about)
 
@@ -420,6 +471,10 @@ class MainWindow(QMainWindow):
         self.docks["calibration"].raise_()
         self._dock("measurements", "Measurements", self.measurements_panel, Qt.DockWidgetArea.BottomDockWidgetArea,
                    scroll=False)
+        self.profile_plot = CurvePlot()
+        self._dock("profile", "Profile", self.profile_plot, Qt.DockWidgetArea.BottomDockWidgetArea, scroll=False)
+        self.tabifyDockWidget(self.docks["measurements"], self.docks["profile"])
+        self.docks["profile"].hide()
         self.docks["measurements"].hide()
         self._table_hidden_by_user = False
         self.docks["measurements"].toggleViewAction().triggered.connect(
@@ -433,7 +488,7 @@ class MainWindow(QMainWindow):
     def _build_status(self) -> None:
         sb = self.statusBar()
         self.readout = QLabel("")
-        self.readout.setMinimumWidth(420)
+        self.readout.setMinimumWidth(560)
         self.readout.setStyleSheet("font-family: monospace;")
         self._task_label = QLabel("")
         self.progress = QProgressBar()
@@ -620,6 +675,7 @@ class MainWindow(QMainWindow):
         self._refresh_rings()
         k, _, _, source = s.camera_constant
         v.camera_constant_px_A = k if source != "none" and math.isfinite(k) else None
+        self._refresh_legend()
         v.viewport().update()
 
     def candidate_grid_xy(self, s: Session, cand) -> np.ndarray:
@@ -649,6 +705,31 @@ class MainWindow(QMainWindow):
         # camera equation R·d = K (DESIGN.md): the same direction, the radius of the calibration
         scale = np.where(ok, k_cal / np.where(ok, d, 1.0) / np.where(ok, r, 1.0), 1.0)
         return c0 + (ideal * scale[:, None]) @ fwd.T
+
+    def _refresh_legend(self) -> None:
+        """The legend lists the kinds of marks on show."""
+        s, v = self.session, self.view
+        kinds = []
+        if s is not None:
+            if s.centre is not None and v.visible.get("centre", True):
+                kinds.append("centre")
+            if v.visible.get("spots", True):
+                origins = set(s.spot_origins)
+                kinds += [k for k, o in (("spot_auto", "auto"), ("spot_manual", "manual")) if o in origins]
+            if v.predicted_layer.count and v.visible.get("predicted", True):
+                kinds.append("predicted")
+                if np.any(v.predicted_layer.forbidden):
+                    kinds.append("forbidden")
+            if v.ring_layer.count and v.visible.get("rings", True):
+                kinds.append("rings")
+            if s.mask.any() and v.visible.get("mask", True):
+                kinds.append("mask")
+        self.legend.set_kinds(kinds if self.act_legend.isChecked() else [])
+
+    def eventFilter(self, obj, event) -> bool:  # noqa: N802
+        if obj is self.view.viewport() and event.type() == event.Type.Resize:
+            self.legend.place()
+        return False
 
     def _refresh_rings(self) -> None:
         s = self.session
@@ -704,6 +785,7 @@ class MainWindow(QMainWindow):
 
     def set_layer_visible(self, name: str, on: bool) -> None:
         self.view.set_layer_visible(name, on)
+        self._refresh_legend()
         a = self.layer_actions.get(name)
         if a is not None and a.isChecked() != on:
             a.setChecked(on)
@@ -837,21 +919,28 @@ class MainWindow(QMainWindow):
         else:
             self.open_image_file(p, then=then)
 
-    def open_image_file(self, path: Path, *, then: Callable[[Session], None] | None = None) -> None:
+    def open_image_file(self, path: Path, *, then: Callable[[Session], None] | None = None, page: int = 0) -> None:
         from saedkit.core.imageio import read_pattern
 
         settings = self.display
 
         def work(progress, should_stop):
-            image = read_pattern(path)
+            image = read_pattern(path, page=page, mask_nonfinite=True)
             progress(1, 2)
-            screen = _render_screen(image.data, settings)
+            screen = _render_screen(image.data, settings, mask=image.mask)
             progress(2, 2)
-            return image, screen
+            return image, screen, _count_frames(path)
 
         def done(result):
-            image, screen = result
+            image, screen, n_frames = result
             self._open_image(image, screen, then=then)
+            n_bad = 0 if image.mask is None else int(np.count_nonzero(image.mask))
+            if n_bad:
+                self.notify(f"{Path(path).name}: {n_bad} pixels are NaN or infinite; they are masked (shown in the "
+                            "mask colour) and left out of every measurement.", "warning")
+            if n_frames > 1:
+                self.notify(f"{Path(path).name} holds {n_frames} frames; frame {page + 1} is shown.", "info",
+                            actions=[("Choose frame…", lambda: self.choose_frame(path, n_frames, page))])
 
         def failed(exc):
             self._task_error(exc)
@@ -860,6 +949,15 @@ class MainWindow(QMainWindow):
 
         self.runner.submit("open", f"Reading {Path(path).name}", work,
                            on_done=lambda r: self.guard(lambda: done(r)), on_error=failed)
+
+    def choose_frame(self, path, n_frames: int, current: int = 0) -> None:
+        """Ask which frame (1 … n) of a multi-frame file to show, and open it."""
+        from PySide6.QtWidgets import QInputDialog
+
+        frame, ok = QInputDialog.getInt(self, "Choose a frame", f"Frame (1 to {n_frames}):", current + 1, 1,
+                                        n_frames)
+        if ok and self._confirm_discard():
+            self.open_image_file(Path(path), page=frame - 1)
 
     def open_image(self, image, *, then: Callable[[Session], None] | None = None) -> None:
         """Show a PatternImage already in memory (e.g. from a script)."""
@@ -890,19 +988,27 @@ class MainWindow(QMainWindow):
         self._start_auto_mask(session, then=then, keep_phases=keep_phases)
 
     def _start_auto_mask(self, session: Session, *, then=None, keep_phases=()) -> None:
+        from saedkit.core.detector_mask import find_detector_mask
+
         data = session.image.data
         sat = session.image.saturation_value
+        read_mask = session.image.mask
 
         def work(progress, should_stop):
             from saedkit.core.detection.masks import find_auto_mask
 
             mask = find_auto_mask(data, saturation_value=sat)
+            if read_mask is not None:
+                mask = mask | read_mask  # pixels the file itself could not give (NaN, infinite)
+            detector = find_detector_mask(_detector_mask_folder(), data.shape)
+            if detector is not None:
+                mask = mask | detector.mask
             screen_buffer = np.empty(mask.shape, dtype=np.uint32)
             screen_buffer.fill(0)  # paged in here, not on the GUI thread
-            return mask, screen_buffer
+            return mask, screen_buffer, detector
 
         def done(result):
-            mask, screen_buffer = result
+            mask, screen_buffer, detector = result
             if self.session is not session:
                 return
             self.view.mask_layer.adopt_buffer(screen_buffer)
@@ -912,7 +1018,10 @@ class MainWindow(QMainWindow):
                 session.set_phases(list(keep_phases), label="Keep the phases of the previous pattern")
                 session.mark_saved()
             n = int(np.count_nonzero(mask))
-            if n:
+            if detector is not None:
+                self.show_status(f"Mask: {n} pixels excluded, {detector.n_excluded} of them by the detector mask of "
+                                 f"'{detector.camera}'.")
+            elif n:
                 self.show_status(f"Automatic mask: {n} pixels excluded (saturated or under the beam stop).")
             if then is not None:
                 then(session)
@@ -1056,6 +1165,9 @@ class MainWindow(QMainWindow):
             raise InputError(f"{out}: exists and is not a folder; choose a folder name for the report")
         out.mkdir(parents=True, exist_ok=True)
         analysis = s.to_analysis()
+        # the report draws the pattern with the display the user sees (curve, limits, colours)
+        analysis = dataclasses.replace(analysis, parameters={**dict(analysis.parameters or {}),
+                                                             "display": self.display.to_dict()})
 
         def work(progress, should_stop):
             return write_report_bundle(analysis, out, progress=progress)
@@ -1075,6 +1187,47 @@ class MainWindow(QMainWindow):
     def redo(self) -> None:
         if self.session is not None and not self.session.redo():
             self.show_status("Nothing to redo.")
+
+    def show_line_profile(self, a_xy, b_xy) -> None:
+        """The intensity along the line from ``a_xy`` to ``b_xy`` (spots on it marked), in the Profile panel."""
+        from saedkit.core.profiles import calculate_line_profile
+
+        s = self._require()
+        prof = calculate_line_profile(s.image.data, a_xy, b_xy, mask=s.mask,
+                                      spots_xy=s.spots_xy if s.spots else None)
+        self.line_profile = prof
+        self.profile_plot.set_curve(prof.distance_px, prof.intensity, x_name="distance (px)",
+                                    title=f"line ({a_xy[0]:.0f}, {a_xy[1]:.0f}) → ({b_xy[0]:.0f}, {b_xy[1]:.0f}), "
+                                          f"{prof.length_px:.1f} px",
+                                    marks=[(d, str(i + 1)) for d, i in zip(prof.spot_distance_px, prof.spot_index)])
+        self.view.measure_layer.set_points(a_xy, b_xy)
+        self._show_profile_dock()
+
+    def show_azimuthal_profile(self, xy) -> None:
+        """The intensity round the ring through ``xy`` (about the centre, with the calibration's distortion)."""
+        from saedkit.core.profiles import calculate_azimuthal_profile
+
+        s = self._require()
+        if s.centre is None:
+            raise InputError("an azimuthal profile needs the centre: set it first (Centre tool or Analyse menu)")
+        _, _, ell, _ = s.camera_constant
+        c = (s.centre.x, s.centre.y)
+        ideal = ell.correct_array(np.array([[xy[0] - c[0], xy[1] - c[1]]]))[0]
+        r = float(np.hypot(*ideal))
+        prof = calculate_azimuthal_profile(s.image.data, c, r, width_px=3.0, ellipse=ell, mask=s.mask)
+        self.azimuthal_profile = prof
+        k, _, _, source = s.camera_constant
+        d_txt = f", d = {k / r:.4f} Å" if source != "none" and math.isfinite(k) else ""
+        self.profile_plot.set_curve(prof.angle_deg, prof.intensity, x_name="azimuth (°)",
+                                    title=f"ring R = {r:.1f} px{d_txt}, band 3 px")
+        self._show_profile_dock()
+
+    def _show_profile_dock(self) -> None:
+        d = self.docks["profile"]
+        if self.act_pattern_only.isChecked():
+            self.act_pattern_only.setChecked(False)
+        d.show()
+        d.raise_()
 
     def _sync_table_action(self) -> None:
         self.act_table.blockSignals(True)
@@ -1138,6 +1291,17 @@ class MainWindow(QMainWindow):
         return snap_to_spot(s.image.data, (float(xy[0]), float(xy[1])), mask=s.mask,
                             search_radius_px=s.settings.snap_radius_px)
 
+    def find_beam_at(self, xy):
+        """The direct beam near a click, refined (a saturated or masked top is fitted on its flanks); None if none."""
+        s = self._require()
+        from saedkit.core.detection.spots import snap_to_spot
+
+        try:
+            return snap_to_spot(s.image.data, (float(xy[0]), float(xy[1])), mask=None,
+                                search_radius_px=max(2.0 * s.settings.snap_radius_px, 12.0), spot_sigma_px=3.0)
+        except SaedkitError:
+            return None
+
     def paint_mask(self, points, radius_px: float, *, erase: bool = False) -> None:
         """Apply a brush stroke (discs along ``points``) to the mask: one undo step."""
         from saedkit.core.detection.masks import mask_disc
@@ -1187,6 +1351,27 @@ class MainWindow(QMainWindow):
 
         self._submit("mask", "Masking saturated pixels and the beam stop", work, done)
 
+    def save_detector_mask(self, camera: str | None = None) -> Path | None:
+        """Save the current mask as the detector mask of a camera (asks its name): reused for its patterns."""
+        from PySide6.QtWidgets import QInputDialog
+
+        from saedkit.core.detector_mask import detector_mask_path, write_detector_mask
+
+        s = self._require()
+        if not s.mask.any():
+            raise InputError("the mask is empty: mask the detector's gaps, hot pixels or beam stop first")
+        if camera is None:
+            camera, ok = QInputDialog.getText(self, "Save detector mask",
+                                              "Camera name (the mask is reused for its patterns of "
+                                              f"{s.image.shape[1]}×{s.image.shape[0]} px):", text="camera")
+            if not ok:
+                return None
+        path = detector_mask_path(_detector_mask_folder(), camera, s.image.shape)
+        write_detector_mask(path, s.mask, camera=camera)
+        self.show_status(f"Saved the detector mask of '{camera}' ({int(s.mask.sum())} px) to {path}; "
+                         "it is applied to every pattern of this size opened from now on.")
+        return path
+
     def clear_mask(self) -> None:
         self._require().set_mask(None, label="Clear mask")
 
@@ -1209,7 +1394,7 @@ class MainWindow(QMainWindow):
                 s.set_ring_fit(fit)
                 s.set_centre(fit.centre)
             self.notify(f"Centre from {len(fit.rings)} rings: ({fit.centre.x:.2f}, {fit.centre.y:.2f}) ± "
-                        f"({fit.centre.sigma_x:.2f}, {fit.centre.sigma_y:.2f}) px.", "success")
+                        f"({fmt_sigma(fit.centre.sigma_x)}, {fmt_sigma(fit.centre.sigma_y)}) px.", "success")
 
         self._submit("centre", "Fitting the rings", work, done)
 
@@ -1227,7 +1412,7 @@ class MainWindow(QMainWindow):
                 return
             s.set_centre(c, label="Centre from Friedel pairs")
             self.notify(f"Centre from {c.n_used} Friedel pairs: ({c.x:.2f}, {c.y:.2f}) ± "
-                        f"({c.sigma_x:.2f}, {c.sigma_y:.2f}) px.", "success")
+                        f"({fmt_sigma(c.sigma_x)}, {fmt_sigma(c.sigma_y)}) px.", "success")
 
         self._submit("centre", "Finding the centre", work, done)
 
@@ -1602,21 +1787,35 @@ class MainWindow(QMainWindow):
 
     # ================================================================== read-out
 
-    def _cursor_moved(self, x: float, y: float) -> None:
+    def readout_text(self, x: float, y: float) -> str:
+        """The cursor read-out at image point (x, y): position, intensity, R, azimuth, d and |g| ("" outside)."""
         s = self.session
         if s is None:
-            return
+            return ""
         r = s.describe_point(x, y)
         if not r.inside:
-            self.readout.setText("")
-            return
-        parts = [f"x {x:8.1f}", f"y {y:8.1f}", f"I {r.value:.5g}" + (" (masked)" if r.masked else "")]
+            return ""
+        parts = [f"x {x:7.1f}", f"y {y:7.1f}", f"I {r.value:.5g}" + (" (masked)" if r.masked else "")]
         if math.isfinite(r.radius_px):
             parts.append(f"R {r.radius_px:.1f} px")
+            parts.append(f"φ {r.angle_deg:.1f}°")
         if math.isfinite(r.d_A):
             parts.append(f"d {r.d_A:.4f} Å")
             parts.append(f"|g| {r.g_per_nm:.3f} nm⁻¹")
-        self.readout.setText("   ".join(parts))
+        return "   ".join(parts)
+
+    def _cursor_moved(self, x: float, y: float) -> None:
+        text = self.readout_text(x, y)
+        self.readout.setText(text)
+        if self.act_magnifier.isChecked() and text:
+            pos = self.view.mapFromScene(QPointF(x, y))
+            self.magnifier.show_at(self.view.image_item._buffer, self.view._image_step, (x, y), pos)
+        else:
+            self.magnifier.hide()
+
+    def _cursor_left(self) -> None:
+        self.readout.setText("")
+        self.magnifier.hide()
 
     # ================================================================== misc dialogs
 
@@ -1634,9 +1833,59 @@ class MainWindow(QMainWindow):
                  "left-drag pans with the Pan tool."]
         for cls in TOOL_CLASSES:
             lines.append(f"<b>{cls.title}</b>: {cls.hint}")
-        lines.append("<b>Keys</b>: Ctrl+2…6 choose a tool; F5 find spots; F6 search; F7 calibrate; F8 identify phases; "
+        lines.append("<b>Keys</b>: Ctrl+2…7 choose a tool; F5 find spots; F6 search; F7 calibrate; F8 identify phases; "
                      "Ctrl+0 fit; Ctrl+1 actual pixels; Ctrl+C in the table copies it.")
         QMessageBox.information(self, "Mouse and keys", "<br><br>".join(lines))
+
+    def shortcut_rows(self) -> list[tuple[str, str, str]]:
+        """(menu, command, keys) of every command with a key, menu by menu, for the shortcut sheet."""
+        rows = []
+        seen = set()
+        for menu_action in self.menuBar().actions():
+            menu = menu_action.menu()
+            if menu is None:
+                continue
+            stack = [(menu_action.text().replace("&", ""), menu)]
+            while stack:
+                title, m = stack.pop(0)
+                for a in m.actions():
+                    if a.menu() is not None:
+                        stack.append((f"{title} ▸ {a.text().replace('&', '')}", a.menu()))
+                        continue
+                    keys = ", ".join(k.toString(QKeySequence.SequenceFormat.NativeText) for k in a.shortcuts())
+                    if keys and id(a) not in seen:
+                        seen.add(id(a))
+                        rows.append((title, a.text().replace("&", "").split("\t")[0], keys))
+        rows.append(("Pattern", "Zoom round the cursor", "mouse wheel"))
+        rows.append(("Pattern", "Pan with any tool", "middle-drag"))
+        rows.append(("Measurement table", "Copy the selected rows", QKeySequence(QKeySequence.StandardKey.Copy)
+                     .toString(QKeySequence.SequenceFormat.NativeText)))
+        return rows
+
+    def show_shortcuts(self) -> None:
+        """The keyboard shortcut sheet (Help ▸ Keyboard shortcuts, F1), built from the menus themselves."""
+        from PySide6.QtWidgets import QDialogButtonBox, QHeaderView, QTableWidget, QTableWidgetItem
+
+        dlg = QDialog(self)
+        dlg.setWindowTitle("Keyboard shortcuts")
+        rows = self.shortcut_rows()
+        table = QTableWidget(len(rows), 3, dlg)
+        table.setHorizontalHeaderLabels(["Where", "Command", "Keys"])
+        table.verticalHeader().setVisible(False)
+        table.setEditTriggers(QTableWidget.EditTrigger.NoEditTriggers)
+        for i, row in enumerate(rows):
+            for j, v in enumerate(row):
+                table.setItem(i, j, QTableWidgetItem(v))
+        table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
+        table.horizontalHeader().setStretchLastSection(True)
+        buttons = QDialogButtonBox(QDialogButtonBox.StandardButton.Close)
+        buttons.rejected.connect(dlg.reject)
+        lay = QVBoxLayout(dlg)
+        lay.addWidget(table)
+        lay.addWidget(buttons)
+        dlg.resize(560, 640)
+        self.shortcut_sheet = dlg
+        dlg.show()
 
     def _about(self) -> None:
         from saedkit import __version__

@@ -27,6 +27,8 @@ from PySide6.QtCore import QPointF, QRectF, Qt
 from PySide6.QtGui import QBrush, QColor, QFont, QFontMetricsF, QImage, QPainter, QPainterPath, QPen, QPolygonF, QTransform
 from PySide6.QtWidgets import QGraphicsItem
 
+from saedkit.core.marker_style import MARKER_COLOURS
+
 __all__ = [
     "COLOURS",
     "CentreLayer",
@@ -43,15 +45,8 @@ __all__ = [
 ]
 
 COLOURS = {
-    "centre": QColor("#ffb627"),
-    "spot_auto": QColor("#2fd3c4"),
-    "spot_manual": QColor("#ff6fae"),
+    **{k: QColor(v) for k, v in MARKER_COLOURS.items()},  # the one style shared with the report
     "spot_selected": QColor("#ffffff"),
-    "predicted": QColor("#a6ee5a"),
-    "forbidden": QColor("#e8d36a"),
-    "rings": QColor("#ff8f4a"),
-    "ellipse": QColor("#c9a6ff"),
-    "measure": QColor("#fff27a"),
     "mask": QColor(70, 115, 255, 105),
     "stroke": QColor(90, 140, 255, 120),
     "label_back": QColor(10, 14, 20, 175),

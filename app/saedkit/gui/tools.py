@@ -18,7 +18,7 @@ from saedkit.core.detection.centre import manual_centre
 from saedkit.core.errors import SaedkitError
 from saedkit.gui.panels import fmt_pm
 
-__all__ = ["Tool", "PanTool", "CentreTool", "SpotTool", "RulerTool", "MaskTool", "TOOL_CLASSES"]
+__all__ = ["Tool", "PanTool", "CentreTool", "SpotTool", "RulerTool", "MaskTool", "ProfileTool", "TOOL_CLASSES"]
 
 _HIT_PX = 9.0  # how close (screen pixels) a click must be to a marker to grab it
 
@@ -108,21 +108,31 @@ class PanTool(Tool):
 
 
 class CentreTool(Tool):
-    """Click to set the centre; drag the centre marker to move it."""
+    """Click the direct beam to set the centre there (refined on the beam), or Shift+click three points of a ring."""
 
     name = "centre"
     title = "Centre"
-    hint = "Click the undiffracted beam to set the centre, or drag the centre marker. " \
-           "Automatic centring is in the Analyse menu."
+    hint = "Click the direct beam to centre on it (refined to its middle; Alt+click: exactly there), or " \
+           "Shift+click three points on one ring; drag the centre marker to move it. Automatic centring: Analyse menu."
     cursor = Qt.CursorShape.CrossCursor
 
     def __init__(self, ctx) -> None:
         super().__init__(ctx)
         self._drag = False
+        self.ring_points: list[tuple[float, float]] = []
+
+    def deactivate(self) -> None:
+        self._clear_ring_points()
+
+    def _clear_ring_points(self) -> None:
+        self.ring_points = []
+        self.view.stroke_layer.set_state(polygon=np.zeros((0, 2)))
 
     def press(self, xy, button, mods) -> bool:
         if button != LEFT or self.session is None or not self._inside(xy):
             return False
+        if _has(mods, Qt.KeyboardModifier.ShiftModifier):
+            return True
         self._drag = True
         self.view.centre_layer.set_centre(xy)
         return True
@@ -132,14 +142,50 @@ class CentreTool(Tool):
             self.view.centre_layer.set_centre(xy)
 
     def release(self, xy, button, mods) -> bool:
-        if not self._drag or button != LEFT:
+        if button != LEFT or self.session is None:
+            return False
+        if _has(mods, Qt.KeyboardModifier.ShiftModifier) and not self._drag:
+            self._add_ring_point(xy)
+            return True
+        if not self._drag:
             return False
         self._drag = False
         if not self._inside(xy):
             self.ctx.refresh_overlays()
             return True
-        self.session.set_centre(manual_centre(float(xy[0]), float(xy[1]), sigma_px=1.0), label="Set centre by hand")
+        self._clear_ring_points()
+        exact = _has(mods, Qt.KeyboardModifier.AltModifier)
+        beam = None if exact else self.ctx.find_beam_at(xy)
+        if beam is not None:
+            self.session.set_centre(manual_centre(float(beam.x), float(beam.y), sigma_px=max(
+                0.1, float(np.nan_to_num(math.hypot(beam.sigma_x, beam.sigma_y) / math.sqrt(2), nan=0.5)))),
+                label="Centre on the direct beam")
+            self.ctx.show_status(f"Centre on the direct beam: ({beam.x:.2f}, {beam.y:.2f}) px.")
+        else:
+            self.session.set_centre(manual_centre(float(xy[0]), float(xy[1]), sigma_px=1.0), label="Set centre by hand")
         return True
+
+    def _add_ring_point(self, xy) -> None:
+        self.ring_points.append((float(xy[0]), float(xy[1])))
+        self.view.stroke_layer.set_state(polygon=np.array(self.ring_points))
+        n = len(self.ring_points)
+        if n < 3:
+            self.ctx.show_status(f"Ring point {n} of 3: Shift+click {3 - n} more on the same ring.")
+            return
+        from saedkit.core.ring_points import calculate_circle_through_points
+
+        pts, self.ring_points = self.ring_points, []
+        self.view.stroke_layer.set_state(polygon=np.zeros((0, 2)))
+        circle = calculate_circle_through_points(pts)
+        self.session.set_centre(manual_centre(circle.x, circle.y, sigma_px=1.0), label="Centre from three ring points")
+        self.ctx.show_status(f"Centre from three points on a ring: ({circle.x:.2f}, {circle.y:.2f}) px, "
+                             f"R = {circle.radius_px:.1f} px.")
+
+    def key(self, key, mods) -> bool:
+        if key == Qt.Key.Key_Escape and self.ring_points:
+            self._clear_ring_points()
+            return True
+        return False
 
 
 class SpotTool(Tool):
@@ -443,4 +489,54 @@ class MaskTool(Tool):
         self.view.stroke_layer.set_state(cursor=None)
 
 
-TOOL_CLASSES = (PanTool, CentreTool, SpotTool, RulerTool, MaskTool)
+class ProfileTool(Tool):
+    """Drag a line: the intensity along it, with the spots on it; double-click on a ring: its azimuthal profile."""
+
+    name = "profile"
+    title = "Profile"
+    hint = ("Drag from one point to another for the intensity along the line (spots on it marked); "
+            "double-click on a ring for the intensity round it. Esc clears.")
+    cursor = Qt.CursorShape.CrossCursor
+
+    def __init__(self, ctx) -> None:
+        super().__init__(ctx)
+        self.start: tuple[float, float] | None = None
+
+    def deactivate(self) -> None:
+        self.start = None
+
+    def press(self, xy, button, mods) -> bool:
+        if button != LEFT or self.session is None or not self._inside(xy):
+            return False
+        self.start = (float(xy[0]), float(xy[1]))
+        self.view.measure_layer.set_points(self.start)
+        return True
+
+    def move(self, xy, buttons, mods) -> None:
+        if self.start is not None and buttons & LEFT:
+            self.view.measure_layer.set_points(self.start, xy)
+
+    def release(self, xy, button, mods) -> bool:
+        if self.start is None or button != LEFT:
+            return False
+        a, self.start = self.start, None
+        if math.hypot(xy[0] - a[0], xy[1] - a[1]) < 2.0:
+            return True  # a click, not a drag (a double-click follows, or nothing)
+        self.ctx.guard(lambda: self.ctx.show_line_profile(a, (float(xy[0]), float(xy[1]))))
+        return True
+
+    def double_click(self, xy, mods) -> bool:
+        if self.session is None or not self._inside(xy):
+            return False
+        self.ctx.guard(lambda: self.ctx.show_azimuthal_profile((float(xy[0]), float(xy[1]))))
+        return True
+
+    def key(self, key, mods) -> bool:
+        if key == Qt.Key.Key_Escape:
+            self.start = None
+            self.view.measure_layer.clear()
+            return True
+        return False
+
+
+TOOL_CLASSES = (PanTool, CentreTool, SpotTool, RulerTool, MaskTool, ProfileTool)

@@ -33,6 +33,7 @@ import numpy as np
 from saedkit.core._atomic import write_with_atomic
 from saedkit.core.distortion import NO_DISTORTION, Ellipse
 from saedkit.core.errors import InputError
+from saedkit.core.marker_style import MARKER_COLOURS
 from saedkit.report._common import (
     describe_unindexed,
     finite,
@@ -76,15 +77,15 @@ FIGURE_DPI = 100
 #: Long side of the figure in pixels when ``size_px`` is not given: the image's, within these limits.
 _DEFAULT_SIZE_LIMITS_PX = (800, 1600)
 
-# Colours of saedkit's overlays (chosen to stay apart from each other and from grey).
+# Colours of saedkit's overlays, the same as on screen (core/marker_style.py): the report shows what the user saw
 COLOURS = {
-    "spot": "#ffa630",  # measured spots: amber
-    "grid": "#4dd2ff",  # predicted reflections: sky blue
-    "forbidden": "#d291ff",  # kinematically forbidden reflections: lilac
-    "centre": "#ff4d6d",  # centre: coral red
-    "ring": "#8ee05a",  # fitted rings: green
-    "ellipse": "#ffe45c",  # distortion axes: yellow
-    "mask": "#2f5bff",  # excluded pixels: blue tint
+    "spot": MARKER_COLOURS["spot_auto"],  # measured spots
+    "grid": MARKER_COLOURS["predicted"],  # predicted reflections
+    "forbidden": MARKER_COLOURS["forbidden"],  # kinematically forbidden reflections
+    "centre": MARKER_COLOURS["centre"],
+    "ring": MARKER_COLOURS["rings"],  # fitted rings
+    "ellipse": MARKER_COLOURS["ellipse"],  # distortion axes
+    "mask": MARKER_COLOURS["mask"],  # excluded pixels: blue tint
     "text": "#ffffff",
     "outline": "#000000",
 }
@@ -121,8 +122,8 @@ def _block_reduce(a: np.ndarray, f: int, func) -> np.ndarray:
 
 
 def calculate_display_array(data, mask=None, *, display: str = "log", max_side_px: int | None = None,
-                            gamma: float = 0.5) -> np.ndarray:
-    """Grey levels 0–1 of a pattern for display.
+                            gamma: float = 0.5, settings=None) -> np.ndarray:
+    """Grey levels 0–1 of a pattern for display: the screen's own mapping (:mod:`saedkit.core.display`).
 
     Parameters
     ----------
@@ -130,50 +131,54 @@ def calculate_display_array(data, mask=None, *, display: str = "log", max_side_p
     mask : bool array, optional
         Excluded pixels (left out of the percentiles).
     display : {"log", "gamma", "linear"}
-        ``log``: ``log(1 + (I − I₀.₅)/s)`` with ``s`` the median's height above
-        the 0.5th percentile, up to the 99.99th percentile; ``gamma``:
-        ``((I − I₀.₅)/(I₉₉.₉ − I₀.₅))^gamma``; ``linear``: the same with power 1
-        up to the 99.5th percentile (common practice for diffraction patterns,
-        whose intensities span several decades).
+        The curve, with the screen's default limits (0.5th to 99.9th
+        percentile); ignored when ``settings`` is given.
     max_side_px : int, optional
-        Block-average the image down to at most about this size first.
+        Block-average the levels down to at most about this size.
+    settings : saedkit.core.display.DisplaySettings, optional
+        The display the user chose on screen (curve, gamma, limits).
 
     Returns
     -------
     (rows', cols') float32 array in [0, 1]
     """
-    if display not in DISPLAY_MODES:
-        raise InputError(f"display must be one of {', '.join(DISPLAY_MODES)}, got {display!r}")
+    from saedkit.core.display import DisplaySettings, calculate_display_fraction
+
+    if settings is None:
+        if display not in DISPLAY_MODES:
+            raise InputError(f"display must be one of {', '.join(DISPLAY_MODES)}, got {display!r}")
+        settings = DisplaySettings(mapping=display, gamma=float(gamma))
     a = np.asarray(data, dtype=np.float32)
-    valid = None if mask is None else ~np.asarray(mask, bool)
-    f = 1
+    out = calculate_display_fraction(a, settings, mask=None if mask is None else np.asarray(mask, bool))
     if max_side_px is not None and max(a.shape) > max_side_px:
-        f = int(math.ceil(max(a.shape) / max_side_px))
-    # percentiles from at most ~1e6 pixels
-    step = max(1, int(math.sqrt(a.size / 1e6)))
-    sample = a[::step, ::step]
-    if valid is not None:
-        vs = valid[::step, ::step]
-        if vs.any():
-            sample = sample[vs]
-    sample = sample[np.isfinite(sample)].ravel()
-    if sample.size == 0:
-        return np.zeros_like(_block_reduce(a, f, np.mean))
-    if f > 1:
-        a = _block_reduce(a, f, np.mean)
-    lo, med = np.percentile(sample, [0.5, 50.0])
-    if display == "log":
-        hi = float(np.percentile(sample, 99.99))
-        s = max(float(med - lo), 1e-3 * max(hi - lo, 1e-12), 1e-12)
-        top = math.log1p(max(hi - lo, s) / s)
-        out = np.log1p(np.clip(a - lo, 0, None) / s) / top
-    else:
-        hi = float(np.percentile(sample, 99.9 if display == "gamma" else 99.5))
-        span = max(hi - float(lo), 1e-12)
-        out = np.clip((a - lo) / span, 0, 1)
-        if display == "gamma":
-            out = out ** float(gamma)
+        out = _block_reduce(out, int(math.ceil(max(a.shape) / max_side_px)), np.mean)
     return np.clip(out, 0, 1).astype(np.float32)
+
+
+def _shown_display(analysis):
+    """The display the user saw (saved by the window in ``analysis.parameters["display"]``), or None."""
+    d = (getattr(analysis, "parameters", None) or {}).get("display")
+    if not isinstance(d, dict):
+        return None
+    from saedkit.core.display import DisplaySettings
+
+    try:
+        return DisplaySettings.from_dict(d)
+    except (TypeError, ValueError):
+        return None
+
+
+def _colour_map(settings):
+    """The screen's colour table as a matplotlib colour map ("gray" without settings)."""
+    if settings is None:
+        return "gray"
+    from matplotlib.colors import ListedColormap
+
+    from saedkit.core.display import calculate_colour_table
+
+    table = calculate_colour_table(settings.colour_map, invert=settings.invert)
+    rgb = np.array([[(v >> 16) & 255, (v >> 8) & 255, v & 255] for v in table], float) / 255.0
+    return ListedColormap(rgb)
 
 
 # --------------------------------------------------------------------------- #
@@ -374,9 +379,10 @@ def _draw_pattern(ax, analysis, *, overlays: Sequence[str], display: str, unit: 
     img = analysis.image
     rows, cols = img.shape
     mask = getattr(img, "mask", None)
-    grey = calculate_display_array(img.data, mask, display=display, max_side_px=max_side_px)
+    shown = _shown_display(analysis)
+    grey = calculate_display_array(img.data, mask, display=display, max_side_px=max_side_px, settings=shown)
     extent = (-0.5, cols - 0.5, rows - 0.5, -0.5)
-    ax.imshow(grey, cmap="gray", vmin=0, vmax=1, extent=extent, origin="upper", interpolation="antialiased")
+    ax.imshow(grey, cmap=_colour_map(shown), vmin=0, vmax=1, extent=extent, origin="upper", interpolation="antialiased")
     ax.set_xlim(-0.5, cols - 0.5)
     ax.set_ylim(rows - 0.5, -0.5)
     ax.set_axis_off()

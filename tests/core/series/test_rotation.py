@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import numpy as np
-import pytest
 
 from saedkit.core.series.rotation import find_rotation_axis, link_spot_tracks
 
