@@ -190,8 +190,30 @@ def read_cif_block(path: str, *, text: str | None = None) -> CifContent:
     ------
     CrystalError
         With the file name, for a file that cannot be parsed, has no cell,
-        no space group or no atom sites.
+        no space group or no atom sites, or holds text that is not UTF-8.
     """
+    try:
+        return _read_cif_block(path, text=text)
+    except UnicodeDecodeError:
+        line = _first_non_utf8_line(path) if text is None else None
+        where = f" (line {line})" if line else ""
+        raise CrystalError(f"{path}: the CIF holds text that is not UTF-8{where}; "
+                           "save it with UTF-8 encoding") from None
+
+
+def _first_non_utf8_line(path: str) -> int | None:
+    try:
+        with open(path, "rb") as fh:
+            data = fh.read(50_000_000)
+        data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        return data.count(b"\n", 0, exc.start) + 1
+    except OSError:
+        return None
+    return None
+
+
+def _read_cif_block(path: str, *, text: str | None = None) -> CifContent:
     try:
         doc = gemmi.cif.read_string(text) if text is not None else gemmi.cif.read_file(str(path))
     except (RuntimeError, ValueError, OSError) as exc:
