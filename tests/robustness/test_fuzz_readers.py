@@ -133,7 +133,7 @@ def _read_image(p: Path) -> None:
 
 
 def test_fuzz_image_readers_short(tmp_path):
-    n = _fuzz(_read_image, _image_cases(tmp_path, 14, 2000), budget_s=8.0)
+    n = _fuzz(_read_image, _image_cases(tmp_path, 14, 2000), budget_s=5.0)
     assert n >= 200
 
 
@@ -169,7 +169,7 @@ def _read_cif(p: Path) -> None:
 
 
 def test_fuzz_cif_reader_short(tmp_path):
-    assert _fuzz(_read_cif, _cif_cases(tmp_path, 7, 1500), budget_s=6.0) >= 100
+    assert _fuzz(_read_cif, _cif_cases(tmp_path, 7, 1500), budget_s=4.0) >= 100
 
 
 @pytest.mark.slow
@@ -228,7 +228,7 @@ def _read_session(p: Path) -> None:
 
 
 def test_fuzz_session_reader_short(tmp_path):
-    assert _fuzz(_read_session, _session_cases(tmp_path, 3, 2000), budget_s=6.0) >= 200
+    assert _fuzz(_read_session, _session_cases(tmp_path, 3, 2000), budget_s=4.0) >= 200
 
 
 @pytest.mark.slow
