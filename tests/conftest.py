@@ -13,9 +13,10 @@ os.environ.setdefault("MPLBACKEND", "Agg")
 
 @pytest.fixture(autouse=True)
 def _isolated_user_dirs(tmp_path, monkeypatch):
-    """Point saedkit's settings and data folders (calibration library, autosave) at tmp_path."""
+    """Point saedkit's settings, data and log folders (calibration library, autosave, error log) at tmp_path."""
     monkeypatch.setenv("SAEDKIT_DATA_DIR", str(tmp_path / "saedkit-data"))
     monkeypatch.setenv("SAEDKIT_CONFIG_DIR", str(tmp_path / "saedkit-config"))
+    monkeypatch.setenv("SAEDKIT_LOG_DIR", str(tmp_path / "saedkit-logs"))
     yield
 
 

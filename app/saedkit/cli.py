@@ -13,6 +13,7 @@ import argparse
 import json
 import os
 import sys
+import warnings
 
 # Small matrix products are the hot path here; BLAS threads only fight over the
 # cores (measured 100x slower on a loaded 2-core machine). Set before numpy loads.
@@ -77,15 +78,21 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if args.command is None:
         args = parser.parse_args(["gui", *([] if argv is None else argv)])
-    try:
-        result = args.func(args)
-    except SaedkitError as exc:
-        msg = " ".join(str(exc).split())
-        print(f"saedkit {args.command}: error: {msg}", file=sys.stderr)
-        return 1
-    except KeyboardInterrupt:
-        print(f"saedkit {args.command}: interrupted", file=sys.stderr)
-        return 130
+    # library warnings (numpy, tifffile, ...) are held back: a failure prints one line only,
+    # a success passes them on to the warning filters in force (the test suite turns them into errors)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            result = args.func(args)
+        except SaedkitError as exc:
+            msg = " ".join(str(exc).split())
+            print(f"saedkit {args.command}: error: {msg}", file=sys.stderr)
+            return 1
+        except KeyboardInterrupt:
+            print(f"saedkit {args.command}: interrupted", file=sys.stderr)
+            return 130
+    for w in caught:
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno, source=w.source)
     if result is None:
         return 0
     if isinstance(result, int):

@@ -105,3 +105,18 @@ def test_resolve_calibration_file_with_hostile_json_is_a_library_error(tmp_path)
         p.write_text(text)
         with pytest.raises(SaedkitError, match="one.json"):
             resolve_calibration(p)
+
+
+def test_cli_list_and_recover_on_a_damaged_library(capsys):
+    # found 6 and 8: tracebacks from `calibrations list` and `recover`; control characters printed raw
+    from saedkit.cli import main
+
+    lib = CalibrationLibrary()
+    lib.path.parent.mkdir(parents=True, exist_ok=True)
+    lib.path.write_text(DAMAGED["control characters in a name"])
+    assert main(["calibrations", "list"]) == 1
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "\x1b" not in err and "fake line" in err  # escaped, on one line
+    assert main(["calibrations", "recover"]) == 0
+    capsys.readouterr()
+    assert lib.list() == [] and len(list(lib.path.parent.glob("calibrations.json.broken-*"))) == 1

@@ -156,6 +156,7 @@ def test_a_1_4_mb_session_loads_fast_and_small(saved):
     peak = tracemalloc.get_traced_memory()[1]
     tracemalloc.stop()
     assert len(s.spots) == 3000
+    print(f"1.4 MB session: {elapsed:.2f} s, peak {peak / 1e6:.0f} MB")
     assert elapsed < 5.0 and peak < 300e6
 
 

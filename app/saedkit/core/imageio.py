@@ -147,6 +147,7 @@ class PatternImage:
         if not ready:
             original = np.asarray(data)
             _check_pixels(original, "data", InputError)
+            _check_float32_range(original, "data", InputError)
             if not self.dtype:
                 object.__setattr__(self, "dtype", str(original.dtype))
             if not self.sha256:
@@ -342,6 +343,7 @@ def pattern_from_array(
     """
     arr = np.asarray(array)
     _check_pixels(arr, "array", InputError)
+    _check_float32_range(arr, "array", InputError)
     data = np.array(arr, dtype=np.float32, copy=True)
     data.flags.writeable = False
     return PatternImage(
@@ -652,12 +654,12 @@ def read_pattern(
     )
 
 
-def _check_float32_range(raw: np.ndarray, where: str) -> None:
+def _check_float32_range(raw: np.ndarray, where: str, error: type[Exception] = ImageReadError) -> None:
     """Refuse pixels a float32 cannot hold (they would become infinite)."""
     if raw.dtype.kind == "f" and raw.dtype.itemsize > 4:
         biggest = float(np.max(np.abs(raw)))
         if biggest > float(np.finfo(np.float32).max):
-            raise ImageReadError(f"{where}: pixel value {biggest:.3g} is beyond the float32 range "
+            raise error(f"{where}: pixel value {biggest:.3g} is beyond the float32 range "
                                  f"(±{float(np.finfo(np.float32).max):.3g}); rescale the image")
 
 

@@ -85,7 +85,10 @@ def calculate_wavelength_A(voltage_kv: float) -> float:
     0.02508
     """
     v_star = calculate_relativistic_voltage_V(voltage_kv)
-    return sc.h / math.sqrt(2 * sc.m_e * sc.e * v_star) * 1e10
+    momentum = math.sqrt(2 * sc.m_e * sc.e * v_star)
+    if momentum == 0.0:
+        raise InputError(f"voltage_kv={voltage_kv!r} is too small to give an electron wavelength")
+    return _in_range("wavelength", sc.h / momentum * 1e10, voltage_kv=voltage_kv)
 
 
 def calculate_lorentz_factor(voltage_kv: float) -> float:
@@ -106,6 +109,14 @@ def calculate_interaction_constant(voltage_kv: float) -> float:
     return 2 * math.pi * g * sc.m_e * sc.e * lam_m / sc.h**2 * 1e-10
 
 
+def _in_range(what: str, value: float, **inputs: float) -> float:
+    """``value`` when finite and > 0; else an InputError naming the inputs that gave it."""
+    if not (math.isfinite(value) and value > 0):
+        given = ", ".join(f"{k}={v!r}" for k, v in inputs.items())
+        raise InputError(f"{given} give a {what} out of the range of a float ({value!r})")
+    return value
+
+
 def calculate_camera_constant_px_A(camera_length_mm: float, pixel_size_um: float, voltage_kv: float) -> float:
     """Camera constant ``K = λL / p`` in pixel·Å from a camera length.
 
@@ -120,20 +131,23 @@ def calculate_camera_constant_px_A(camera_length_mm: float, pixel_size_um: float
     """
     L = check_positive("camera_length_mm", camera_length_mm)
     p_mm = check_positive("pixel_size_um", pixel_size_um) * 1e-3
-    return calculate_wavelength_A(voltage_kv) * L / p_mm
+    return _in_range("camera constant", calculate_wavelength_A(voltage_kv) * L / p_mm if p_mm > 0 else math.inf,
+                     camera_length_mm=camera_length_mm, pixel_size_um=pixel_size_um)
 
 
 def calculate_camera_length_mm(camera_constant_px_A: float, pixel_size_um: float, voltage_kv: float) -> float:
     """Camera length ``L = K·p / λ`` in mm from a camera constant in pixel·Å."""
     K = check_positive("camera_constant_px_A", camera_constant_px_A)
     p_mm = check_positive("pixel_size_um", pixel_size_um) * 1e-3
-    return K * p_mm / calculate_wavelength_A(voltage_kv)
+    return _in_range("camera length", K * p_mm / calculate_wavelength_A(voltage_kv),
+                     camera_constant_px_A=camera_constant_px_A, pixel_size_um=pixel_size_um)
 
 
 def calculate_lambda_L_mm_A(camera_constant_px_A: float, pixel_size_um: float) -> float:
     """The product λL in mm·Å from K (pixel·Å) and the pixel size (µm)."""
     K = check_positive("camera_constant_px_A", camera_constant_px_A)
-    return K * check_positive("pixel_size_um", pixel_size_um) * 1e-3
+    return _in_range("λL", K * check_positive("pixel_size_um", pixel_size_um) * 1e-3,
+                     camera_constant_px_A=camera_constant_px_A, pixel_size_um=pixel_size_um)
 
 
 def calculate_radius_px(d_A, camera_constant_px_A: float, *, exact: bool = False, voltage_kv: float | None = None):

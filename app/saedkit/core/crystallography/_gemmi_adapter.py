@@ -248,7 +248,7 @@ def read_cif_block(path: str, *, text: str | None = None) -> CifContent:
     ------
     CrystalError
         With the file name, for a file that cannot be parsed, has no cell,
-        no space group or no atom sites.
+        no space group or no atom sites, or holds text that is not UTF-8.
     """
     notes: tuple[str, ...] = ()
     if text is None:

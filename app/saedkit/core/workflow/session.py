@@ -137,7 +137,8 @@ class SessionSettings:
             object.__setattr__(self, name, check_positive(name, getattr(self, name)))
         for name in ("max_index", "top"):
             value = getattr(self, name)
-            if isinstance(value, bool) or int(value) != value or int(value) < 1:
+            if (isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating))
+                    or not math.isfinite(value) or int(value) != value or int(value) < 1):
                 raise InputError(f"{name} must be an integer >= 1, got {value!r}")
             object.__setattr__(self, name, int(value))
         if not str(self.standard).strip():
