@@ -231,7 +231,11 @@ def test_camera_length_from_pixel_size_and_pattern_image():
     # λL = K·p and L = K·p/λ (camera equation R·d = λL; DESIGN.md conventions)
     assert cal.lambda_L_mm_A == pytest.approx(K * 14e-3)
     assert cal.camera_length_mm == pytest.approx(K * 14e-3 / calculate_wavelength_A(200))
-    assert cal.camera_length_sigma_mm == pytest.approx(cal.camera_length_mm * cal.camera_constant_rel_sigma)
+    # the camera length carries the fit's σ and the reproducibility of K as separate parts, total in quadrature
+    assert cal.camera_length_stat_sigma_mm == pytest.approx(cal.camera_length_mm * cal.camera_constant_rel_sigma)
+    assert cal.camera_length_sys_sigma_mm == pytest.approx(cal.camera_length_mm * cal.reproducibility_pct / 100)
+    assert cal.camera_length_sigma_mm == pytest.approx(math.hypot(cal.camera_length_stat_sigma_mm,
+                                                                  cal.camera_length_sys_sigma_mm))
     assert cal.image_sha256 == pimg.sha256
     rec = cal.to_dict()
     for key in ("camera_constant_px_A", "camera_constant_rel_sigma", "ellipse", "rings", "camera_length_mm",

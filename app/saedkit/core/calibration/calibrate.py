@@ -53,13 +53,14 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from functools import lru_cache
 
 import numpy as np
 from scipy import optimize
 
 from saedkit.core._validate import check_points_xy, check_positive, check_xy, finite_or_none
+from saedkit.core.calibration.camera import DEFAULT_REPRODUCIBILITY_PCT, _CameraMixin, check_reproducibility_pct
 from saedkit.core.detection.centre import CentreResult
 from saedkit.core.crystallography.crystal import Phase, format_indices
 from saedkit.core.distortion import NO_DISTORTION, Ellipse
@@ -162,8 +163,11 @@ class RingAssignment:
 
 
 @dataclass(frozen=True)
-class Calibration:
+class Calibration(_CameraMixin):
     """A camera constant fitted on a pattern of a standard, with its uncertainty and checks.
+
+    A :class:`~saedkit.core.calibration.camera.CameraModel`: K with its
+    statistical σ (the fit's) and, separately, the reproducibility term.
 
     Parameters
     ----------
@@ -209,6 +213,12 @@ class Calibration:
         ``"joint"`` (centre, ellipse and K over ring points), ``"radii"`` (K
         from ring radii alone, the fallback), ``"affine"`` or ``"similarity"``
         (spots).
+    reproducibility_pct : float
+        Systematic relative uncertainty of K when it is used on another pattern
+        (specimen height, lens hysteresis), % (see :mod:`saedkit.core.calibration.camera`).
+    internal_standard : bool
+        True when the standard is on the measured pattern itself (its K applies
+        to that pattern only, with a small reproducibility term).
     """
 
     camera_constant_px_A: float
@@ -234,25 +244,48 @@ class Calibration:
     n_points: int = 0
     exact_camera_equation: bool = False
     fit: str = "joint"
+    reproducibility_pct: float = DEFAULT_REPRODUCIBILITY_PCT
+    internal_standard: bool = False
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "reproducibility_pct", check_reproducibility_pct(self.reproducibility_pct))
 
     @property
-    def camera_constant_rel_sigma(self) -> float:
-        """σ_K / K."""
-        return float(self.camera_constant_sigma_px_A / self.camera_constant_px_A)
+    def source(self) -> str:
+        """Provenance for the camera model: ``"rings"`` or ``"spots"``."""
+        return self.method
+
+    def with_reproducibility(self, reproducibility_pct: float) -> Calibration:
+        """The same calibration with another reproducibility term (%)."""
+        return replace(self, reproducibility_pct=reproducibility_pct)
 
     @property
     def camera_length_sigma_mm(self) -> float | None:
-        """Standard uncertainty of the camera length (from σ_K; the pixel size is taken as exact)."""
+        """Total standard uncertainty of the camera length (statistical and reproducibility; pixel size exact)."""
+        if self.camera_length_mm is None:
+            return None
+        return float(self.camera_length_mm * self.camera_constant_total_rel_sigma)
+
+    @property
+    def camera_length_stat_sigma_mm(self) -> float | None:
+        """Statistical part of the camera length's uncertainty (from the fit's σ_K)."""
         if self.camera_length_mm is None:
             return None
         return float(self.camera_length_mm * self.camera_constant_rel_sigma)
 
     @property
+    def camera_length_sys_sigma_mm(self) -> float | None:
+        """Systematic part of the camera length's uncertainty (the reproducibility)."""
+        if self.camera_length_mm is None:
+            return None
+        return float(self.camera_length_mm * self.reproducibility_pct / 100.0)
+
+    @property
     def lambda_L_sigma_mm_A(self) -> float | None:
-        """Standard uncertainty of λL."""
+        """Total standard uncertainty of λL."""
         if self.lambda_L_mm_A is None:
             return None
-        return float(self.lambda_L_mm_A * self.camera_constant_rel_sigma)
+        return float(self.lambda_L_mm_A * self.camera_constant_total_rel_sigma)
 
     @property
     def is_good(self) -> bool:
@@ -266,6 +299,10 @@ class Calibration:
             "camera_constant_px_A": float(self.camera_constant_px_A),
             "camera_constant_sigma_px_A": float(self.camera_constant_sigma_px_A),
             "camera_constant_rel_sigma": float(self.camera_constant_rel_sigma),
+            "reproducibility_pct": float(self.reproducibility_pct),
+            "camera_constant_sys_sigma_px_A": self.camera_constant_sys_sigma_px_A,
+            "camera_constant_total_sigma_px_A": self.camera_constant_total_sigma_px_A,
+            "internal_standard": bool(self.internal_standard),
             "ellipse": {
                 "ellipticity": float(self.ellipse.ellipticity),
                 "major_axis_deg": float(self.ellipse.major_axis_deg),
@@ -279,6 +316,8 @@ class Calibration:
             "pixel_size_um": finite_or_none(self.pixel_size_um),
             "camera_length_mm": finite_or_none(self.camera_length_mm),
             "camera_length_sigma_mm": finite_or_none(self.camera_length_sigma_mm),
+            "camera_length_stat_sigma_mm": finite_or_none(self.camera_length_stat_sigma_mm),
+            "camera_length_sys_sigma_mm": finite_or_none(self.camera_length_sys_sigma_mm),
             "lambda_L_mm_A": finite_or_none(self.lambda_L_mm_A),
             "lambda_L_sigma_mm_A": finite_or_none(self.lambda_L_sigma_mm_A),
             "standard": self.standard,

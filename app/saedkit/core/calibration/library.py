@@ -43,6 +43,7 @@ from pathlib import Path
 from typing import Any
 
 from saedkit.core._atomic import write_text_atomic
+from saedkit.core.calibration.camera import DEFAULT_REPRODUCIBILITY_PCT, _CameraMixin
 from saedkit.core.distortion import Ellipse
 from saedkit.core.errors import InputError, LibraryError
 
@@ -141,8 +142,17 @@ def _str(rec: dict, name: str, where: str, *, default: Any = _MISSING, non_empty
     return v
 
 
+def _reproducibility(rec: dict, where: str) -> float:
+    value = rec.get("reproducibility_pct", DEFAULT_REPRODUCIBILITY_PCT)
+    if value is None:
+        return DEFAULT_REPRODUCIBILITY_PCT
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value < 50:
+        raise _bad("reproducibility_pct", value, "must be a percentage >= 0 and < 50", where)
+    return float(value)
+
+
 @dataclass(frozen=True)
-class SavedCalibration:
+class SavedCalibration(_CameraMixin):
     """A calibration kept in the library.
 
     Parameters
@@ -179,6 +189,10 @@ class SavedCalibration:
         ``"good"`` or ``"poor"`` as fitted ("" when unknown).
     exact_camera_equation : bool
         K was fitted with ``R = L·tan 2θ``.
+    reproducibility_pct : float
+        Systematic relative uncertainty of K when it is applied to another
+        pattern (specimen height, lens hysteresis), %; records saved before it
+        existed read as the default (see :mod:`saedkit.core.calibration.camera`).
     """
 
     name: str
@@ -200,6 +214,9 @@ class SavedCalibration:
     major_axis_sigma_deg: float = 0.0
     quality: str = ""
     exact_camera_equation: bool = False
+    reproducibility_pct: float = DEFAULT_REPRODUCIBILITY_PCT
+
+    source = "library"  # provenance, for the camera model
 
     def __post_init__(self) -> None:
         # validate (and normalise) through the same path as a record read from disk
@@ -216,11 +233,6 @@ class SavedCalibration:
     def ellipse(self) -> Ellipse:
         """The distortion as an :class:`Ellipse`."""
         return Ellipse(self.ellipticity, self.major_axis_deg)
-
-    @property
-    def camera_constant_rel_sigma(self) -> float:
-        """σ_K / K."""
-        return self.camera_constant_sigma_px_A / self.camera_constant_px_A
 
     @property
     def datetime(self) -> _dt.datetime:
@@ -242,6 +254,24 @@ class SavedCalibration:
         if self.pixel_size_um is None:
             return None
         return self.camera_constant_px_A * self.pixel_size_um * 1e-3
+
+    @property
+    def camera_length_sigma_mm(self) -> float | None:
+        """Total standard uncertainty of the camera length (statistical and reproducibility)."""
+        L = self.camera_length_mm
+        return None if L is None else float(L * self.camera_constant_total_rel_sigma)
+
+    @property
+    def camera_length_stat_sigma_mm(self) -> float | None:
+        """Statistical part of the camera length's uncertainty."""
+        L = self.camera_length_mm
+        return None if L is None else float(L * self.camera_constant_rel_sigma)
+
+    @property
+    def camera_length_sys_sigma_mm(self) -> float | None:
+        """Systematic part (reproducibility) of the camera length's uncertainty."""
+        L = self.camera_length_mm
+        return None if L is None else float(L * self.reproducibility_pct / 100.0)
 
     # -- conversion
 
@@ -297,6 +327,7 @@ class SavedCalibration:
             major_axis_sigma_deg=_num(rec, "major_axis_sigma_deg", where_n, non_negative=True, optional=True) or 0.0,
             quality=quality,
             exact_camera_equation=exact,
+            reproducibility_pct=_reproducibility(rec, where_n),
         )
         obj = object.__new__(cls)
         for f in fields(cls):
@@ -316,6 +347,7 @@ class SavedCalibration:
         pixel_size_um: float | None = None,
         notes: str = "",
         date: str | None = None,
+        reproducibility_pct: float | None = None,
     ) -> SavedCalibration:
         """A library record from a fitted :class:`~saedkit.core.calibration.calibrate.Calibration`.
 
@@ -334,6 +366,8 @@ class SavedCalibration:
             Overrides the calibration's pixel size.
         date : str, optional
             ISO 8601 UTC; now by default.
+        reproducibility_pct : float, optional
+            Overrides the calibration's reproducibility term (%).
 
         Raises
         ------
@@ -364,6 +398,8 @@ class SavedCalibration:
             major_axis_sigma_deg=float(sig_phi) if sig_phi is not None and math.isfinite(sig_phi) else 0.0,
             quality=str(getattr(calibration, "quality", "") or ""),
             exact_camera_equation=bool(getattr(calibration, "exact_camera_equation", False)),
+            reproducibility_pct=float(getattr(calibration, "reproducibility_pct", DEFAULT_REPRODUCIBILITY_PCT)
+                                      if reproducibility_pct is None else reproducibility_pct),
         )
 
 

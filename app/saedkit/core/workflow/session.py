@@ -48,6 +48,7 @@ from saedkit.core.distortion import NO_DISTORTION, Ellipse
 from saedkit.core.errors import ImageReadError, InputError, SaedkitError
 from saedkit.core.uncertainty import calculate_d_sigma, calculate_radius_sigmas
 from saedkit.core.workflow.records import find_record_type, record_name
+from saedkit.core.calibration.camera import EnteredCalibration
 
 __all__ = [
     "Session",
@@ -158,52 +159,6 @@ class SessionSettings:
         """Settings from a record; unknown keys are ignored, missing ones take the defaults."""
         names = {f.name for f in dataclasses.fields(cls)}
         return cls(**{k: v for k, v in dict(record).items() if k in names})
-
-
-@dataclass(frozen=True)
-class EnteredCalibration:
-    """A camera constant typed in by hand (no fit behind it).
-
-    Parameters
-    ----------
-    camera_constant_px_A : float
-        K in pixel·Å (R_px = K / d_A).
-    camera_constant_sigma_px_A : float
-        Its standard uncertainty (0 when unknown).
-    ellipse : Ellipse
-        Distortion to correct for (none by default).
-    name : str
-        Where the value came from, for the record.
-    """
-
-    camera_constant_px_A: float
-    camera_constant_sigma_px_A: float = 0.0
-    ellipse: Ellipse = NO_DISTORTION
-    name: str = "entered by hand"
-
-    def __post_init__(self) -> None:
-        object.__setattr__(self, "camera_constant_px_A",
-                           check_positive("camera_constant_px_A", self.camera_constant_px_A))
-        sigma = check_finite("camera_constant_sigma_px_A", self.camera_constant_sigma_px_A)
-        if sigma < 0:
-            raise InputError(f"camera_constant_sigma_px_A must be >= 0, got {sigma!r}")
-        object.__setattr__(self, "camera_constant_sigma_px_A", sigma)
-
-    @property
-    def camera_constant_rel_sigma(self) -> float:
-        """Relative standard uncertainty of K."""
-        return self.camera_constant_sigma_px_A / self.camera_constant_px_A
-
-    def to_dict(self) -> dict:
-        """JSON-ready record."""
-        return {
-            "source": "entered",
-            "name": self.name,
-            "camera_constant_px_A": self.camera_constant_px_A,
-            "camera_constant_sigma_px_A": self.camera_constant_sigma_px_A,
-            "camera_constant_rel_sigma": self.camera_constant_rel_sigma,
-            "ellipse": self.ellipse.to_dict(),
-        }
 
 
 @dataclass(frozen=True, eq=False)
