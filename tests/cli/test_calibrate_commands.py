@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import json
 import subprocess
 import sys
@@ -110,7 +112,10 @@ def test_spots_with_saved_calibration_reports_d(film, grain, capsys):
         if dist[i] < 1.0 and np.isfinite(truth.d_A[i]):
             matched += 1
             assert abs(s["d_A"] / truth.d_A[i] - 1) < 0.01  # acceptance: within 1 % of the truth
-            assert 0 < s["d_sigma_A"] < 0.01 * s["d_A"]
+            # total σ = statistical (small here) and the default 1 % reproducibility of K, in quadrature
+            assert 0 < s["d_stat_sigma_A"] < 0.01 * s["d_A"]
+            assert s["d_sys_sigma_A"] == pytest.approx(0.01 * s["d_A"], rel=1e-9)
+            assert s["d_sigma_A"] == pytest.approx(math.hypot(s["d_stat_sigma_A"], s["d_sys_sigma_A"]), rel=1e-9)
             assert {"x", "y", "intensity", "snr", "radius_px"} <= set(s)
     assert matched >= 8
 

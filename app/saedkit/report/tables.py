@@ -196,7 +196,7 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
 
     cand = analysis.candidate
     hexagonal = is_hexagonal(cand)
-    centre = pick_centre(analysis, prefer_lattice=cand is not None)
+    centre = pick_centre(analysis)  # the centre the record's spots are measured about
 
     rows: list[dict] = []
     indexed = [s for s in (getattr(cand, "spots", ()) or ())] if cand is not None else []

@@ -40,7 +40,7 @@ import math
 import os
 from dataclasses import asdict, dataclass, fields, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Sequence
 
 from saedkit.core._atomic import write_text_atomic
 from saedkit.core.calibration.camera import DEFAULT_REPRODUCIBILITY_PCT, _CameraMixin
@@ -53,6 +53,7 @@ __all__ = [
     "CalibrationLibrary",
     "default_library_path",
     "resolve_calibration",
+    "estimate_reproducibility_pct",
     "LIBRARY_FORMAT",
     "LIBRARY_VERSION",
 ]
@@ -723,6 +724,31 @@ class CalibrationLibrary:
             out.append(CalibrationHistoryEntry(c.name, c.date, c.camera_constant_px_A,
                                                c.camera_constant_sigma_px_A, ratio - 1.0, sig))
         return out
+
+
+def estimate_reproducibility_pct(history: Sequence[CalibrationHistoryEntry], *, min_count: int = 3) -> float | None:
+    """The reproducibility of K (%) from repeated calibrations of one instrument state, or None if too few.
+
+    Parameters
+    ----------
+    history : sequence of CalibrationHistoryEntry
+        From :meth:`CalibrationLibrary.history` (same voltage, camera length, binning).
+    min_count : int
+        Fewest calibrations that give an estimate.
+
+    Notes
+    -----
+    The scatter of K between calibrations holds the fits' own statistical
+    scatter and the reproducibility: ``r² = s²(K)/K̄² − mean(σ_K²/K²)``
+    (``s`` the sample standard deviation), floored at 0 [cp].
+    """
+    if len(history) < max(int(min_count), 2):
+        return None
+    k = [float(h.camera_constant_px_A) for h in history]
+    mean = sum(k) / len(k)
+    var = sum((x - mean) ** 2 for x in k) / (len(k) - 1)
+    stat = sum((h.camera_constant_sigma_px_A / h.camera_constant_px_A) ** 2 for h in history) / len(history)
+    return 100.0 * math.sqrt(max(var / mean**2 - stat, 0.0))
 
 
 def resolve_calibration(name_or_file: str | os.PathLike, *, library: CalibrationLibrary | None = None
