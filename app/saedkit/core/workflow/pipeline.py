@@ -45,6 +45,7 @@ __all__ = [
     "detect_spots",
     "detect_rings",
     "calibrate_rings",
+    "subtract_rings",
     "calibrate_spot_standard",
     "search_zone_axes",
     "measure_candidates",
@@ -195,6 +196,46 @@ def detect_rings(image, mask: np.ndarray, *, options: PipelineOptions = DEFAULT_
 
     return find_rings(image.data, mask=mask, min_snr=options.ring_min_snr, fit_ellipse=options.fit_ellipse,
                       progress=progress, should_stop=should_stop)
+
+
+def subtract_rings(data: np.ndarray, centre_xy, ellipse, *, mask: np.ndarray | None = None,
+                   bin_px: float = 0.5) -> np.ndarray:
+    """The image with its rotationally symmetric part (rings, diffuse background) taken away.
+
+    The median of the pixels in each thin annulus of ideal (ellipse-corrected)
+    radius about ``centre_xy`` is subtracted and the result clipped at 0. The
+    median is untouched by the few pixels of a spot in an annulus, so spots
+    stay while the rings of an internal standard go.
+
+    Parameters
+    ----------
+    data : 2-D array
+    centre_xy : [x, y]
+    ellipse : Ellipse
+    mask : bool array, optional
+        Pixels left out of the medians.
+    bin_px : float
+        Annulus width, pixels.
+    """
+    a = np.asarray(data, dtype=float)
+    rows, cols = a.shape
+    yy, xx = np.mgrid[0:rows, 0:cols]
+    v = np.stack([xx.ravel() - float(centre_xy[0]), yy.ravel() - float(centre_xy[1])], axis=1)
+    R = np.hypot(*ellipse.correct_array(v).T)
+    b = (R / bin_px).astype(np.int64)
+    vals = a.ravel()
+    use = np.ones(vals.shape, bool) if mask is None else ~np.asarray(mask, bool).ravel()
+    nb = int(b.max()) + 1
+    order = np.lexsort((vals[use], b[use]))
+    sorted_vals = vals[use][order]
+    counts = np.bincount(b[use], minlength=nb)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    med = np.zeros(nb)
+    has = counts > 0
+    lo = starts[has] + (counts[has] - 1) // 2
+    hi = starts[has] + counts[has] // 2
+    med[has] = 0.5 * (sorted_vals[lo] + sorted_vals[hi])
+    return np.clip(a - med[b].reshape(a.shape), 0.0, None)
 
 
 def calibrate_rings(image, standard: Phase, mask: np.ndarray, *, options: PipelineOptions = DEFAULT_OPTIONS,
@@ -358,9 +399,16 @@ def analyse_spot_pattern(
                            reproducibility_pct=reproducibility_pct, voltage_kv=kv)
     total = 4 if phases else 3
     _stage(progress, 1, total)
-    centre = locate_centre(image, mask, centre_xy=centre_xy)
+    spot_image = image
+    if internal_standard is not None and camera.centre is not None:
+        # the standard's rings would read as spots: take them away; their fit gives the centre
+        c = camera.centre
+        spot_image = dataclasses.replace(image, data=subtract_rings(image.data, c.xy, camera.ellipse, mask=mask))
+        centre = c if centre_xy is None else locate_centre(image, mask, centre_xy=centre_xy)
+    else:
+        centre = locate_centre(image, mask, centre_xy=centre_xy)
     _stage(progress, 2, total)
-    spots = detect_spots(image, mask, centre, options=opts, should_stop=should_stop)
+    spots = detect_spots(spot_image, mask, centre, options=opts, should_stop=should_stop)
     _stage(progress, 3, total)
     match = None
     if phases and len(spots) >= 3:
