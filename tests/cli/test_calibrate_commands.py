@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 
 from saedkit.cli import main
+from tests.record_schema import assert_record_schema
 from saedkit.core.distortion import Ellipse
 from saedkit.core.imageio import write_tiff
 from saedkit.core.crystallography.library import find_phase
@@ -46,7 +47,9 @@ def grain(tmp_path):
 
 def _json(capsys, argv):
     assert main(argv) == 0
-    return json.loads(capsys.readouterr().out)
+    rec = json.loads(capsys.readouterr().out)
+    assert_record_schema(argv, rec)
+    return rec
 
 
 def test_calibrate_json_record(film, capsys):
