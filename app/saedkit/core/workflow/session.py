@@ -404,16 +404,18 @@ class PointReading:
 
 
 def _camera_terms(calibration) -> tuple[float, float, Ellipse]:
-    """(K, σK, ellipse) of any calibration-like object; K is NaN without one."""
+    """(K, total σK, ellipse) of a camera model; K is NaN without one.
+
+    The σ is the total (statistical and reproducibility in quadrature), what
+    the ruler and the panels quote; the spot table uses the one measurement
+    (:func:`saedkit.core.measure.measure_positions`), which keeps the parts apart.
+    """
     if calibration is None:
         return math.nan, math.nan, NO_DISTORTION
-    k = float(calibration.camera_constant_px_A)
-    sigma = getattr(calibration, "camera_constant_sigma_px_A", None)
-    if sigma is None:
-        rel = getattr(calibration, "camera_constant_rel_sigma", None)
-        sigma = k * float(rel) if rel is not None else 0.0
-    ellipse = getattr(calibration, "ellipse", None) or NO_DISTORTION
-    return k, float(sigma), ellipse
+    from saedkit.core.calibration.camera import camera_terms
+
+    t = camera_terms(calibration)
+    return t.camera_constant_px_A, t.total_sigma_px_A, t.ellipse
 
 
 def _cov(sx: float, sy: float) -> np.ndarray:
