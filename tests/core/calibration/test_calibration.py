@@ -401,10 +401,16 @@ def test_d_from_offsets_with_ellipse_correction_and_sigma():
         calculate_d_sigma_array(obs, np.ones((2, 2)), cal)
 
 
-def test_apply_works_with_saved_calibration_like_objects():
+def test_apply_works_with_every_camera_model_and_nothing_else():
     from types import SimpleNamespace
 
-    cal = SimpleNamespace(camera_constant_px_A=500.0, ellipse=NO_DISTORTION)
-    assert calculate_d_from_offset_array([[0.0, 250.0]], cal)[0] == pytest.approx(2.0)
+    from saedkit.core.calibration.camera import EnteredCalibration
+
+    # R·d = K (camera equation): 500 px·Å at 250 px is 2 Å
+    assert calculate_d_from_offset_array([[0.0, 250.0]], EnteredCalibration(500.0))[0] == pytest.approx(2.0)
+    # a bare namespace is not a calibration any more: the camera model is built at the edge
+    with pytest.raises(InputError, match="camera must be a calibration"):
+        calculate_d_from_offset_array([[0.0, 250.0]], SimpleNamespace(camera_constant_px_A=500.0,
+                                                                       ellipse=NO_DISTORTION))
     with pytest.raises(InputError, match="camera_constant_px_A"):
-        calculate_d_from_offset_array([[0.0, 250.0]], SimpleNamespace(camera_constant_px_A=-1.0))
+        EnteredCalibration(-1.0)
