@@ -49,6 +49,12 @@ def test_options_hold_each_default_once():
     assert args.top == DEFAULT_OPTIONS.top and args.d_tol == DEFAULT_OPTIONS.d_tolerance_pct
     assert args.angle_tol == DEFAULT_OPTIONS.angle_tolerance_deg and args.max_index == DEFAULT_OPTIONS.max_index
     assert args.min_snr == DEFAULT_OPTIONS.min_snr
+    from saedkit.core.workflow.session import SessionSettings
+
+    st = SessionSettings()  # the desktop program's defaults are the same ones
+    assert (st.top, st.max_index, st.min_snr, st.d_tolerance_pct, st.angle_tolerance_deg) == (
+        DEFAULT_OPTIONS.top, DEFAULT_OPTIONS.max_index, DEFAULT_OPTIONS.min_snr, DEFAULT_OPTIONS.d_tolerance_pct,
+        DEFAULT_OPTIONS.angle_tolerance_deg)
     opts = DEFAULT_OPTIONS.replace(top=3, min_snr=None)
     assert opts.top == 3 and opts.min_snr == DEFAULT_OPTIONS.min_snr
     with pytest.raises(dataclasses.FrozenInstanceError):

@@ -49,6 +49,7 @@ from saedkit.core.errors import ImageReadError, InputError, SaedkitError
 from saedkit.core.uncertainty import calculate_d_sigma, calculate_radius_sigmas
 from saedkit.core.workflow.records import find_record_type, record_name
 from saedkit.core.calibration.camera import EnteredCalibration
+from saedkit.core.workflow.pipeline import DEFAULT_OPTIONS, DEFAULT_VOLTAGE_KV
 
 __all__ = [
     "Session",
@@ -119,13 +120,14 @@ class SessionSettings:
         Calibration standard (library name or CIF path).
     """
 
-    voltage_kv: float = 200.0
+    # the analysis defaults are the pipeline's, stated once in PipelineOptions
+    voltage_kv: float = DEFAULT_VOLTAGE_KV
     pixel_size_um: float | None = None
-    d_tolerance_pct: float = 2.5
-    angle_tolerance_deg: float = 2.0
-    max_index: int = 10
-    top: int = 10
-    min_snr: float = 5.0
+    d_tolerance_pct: float = DEFAULT_OPTIONS.d_tolerance_pct
+    angle_tolerance_deg: float = DEFAULT_OPTIONS.angle_tolerance_deg
+    max_index: int = DEFAULT_OPTIONS.max_index
+    top: int = DEFAULT_OPTIONS.top
+    min_snr: float = DEFAULT_OPTIONS.min_snr
     snap_radius_px: float = 10.0
     standard: str = "Au"
 
