@@ -303,9 +303,15 @@ def _page_calibration(page: _Page, analysis) -> None:
     y = page.title(title, image_label(analysis))
     items: list[tuple[str, str]] = []
     if info is not None:
-        k, sk, rel = info.camera_constant_px_A, info.camera_constant_sigma_px_A, info.camera_constant_rel_sigma
-        items.append(("Camera constant", f"K = {format_value_sigma(k, sk)} px·Å"
-                                         + (f" (relative {format_sig(100 * rel, 2)} %)" if rel else "")))
+        from saedkit.core.calibration.camera import camera_terms
+
+        t = camera_terms(analysis.calibration)
+        k = t.camera_constant_px_A
+        fit = format_value_sigma(k, t.stat_sigma_px_A) if t.stat_sigma_px_A > 0 else f"{k:g}"
+        items.append(("Camera constant", f"K = {format_value_sigma(k, t.total_sigma_px_A)} px·Å (total "
+                                         f"{format_sig(100 * t.total_sigma_px_A / k, 2)} %): fit K = {fit}, "
+                                         f"reproducibility {format_sig(t.reproducibility_pct, 2)} % = "
+                                         f"{format_sig(t.sys_sigma_px_A, 2)} px·Å"))
         e = info.ellipse
         items.append(("Ellipse", f"ellipticity {format_value_sigma(100 * e.ellipticity, None if info.ellipticity_sigma is None else 100 * info.ellipticity_sigma)} %, "
                                  f"major axis {format_value_sigma(e.major_axis_deg, info.major_axis_sigma_deg, max_decimals=2)}°"))
