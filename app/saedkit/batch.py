@@ -63,13 +63,29 @@ def _summarise(analysis) -> dict:
 
 
 def _k_source(analysis, options: dict) -> str:
+    """Where the pattern's camera constant came from (the summary's ``k_source`` column)."""
+    from saedkit.core.calibration.camera import EnteredCalibration
+
     if options.get("standard") is not None:
         return "standard"
-    if getattr(analysis, "calibration", None) is not None:
-        return "calibration"
-    if (analysis.parameters or {}).get("camera_constant_px_A") is not None:
+    if options.get("internal_standard") is not None:
+        return "internal-standard"
+    cal = getattr(analysis, "calibration", None)
+    if isinstance(cal, EnteredCalibration):
         return "entered"
+    if cal is not None:
+        return "calibration"
     return "none"
+
+
+def _pipeline_options(options: dict):
+    """The PipelineOptions of a batch: ``options["options"]``, or the defaults with the dict's tolerances."""
+    from saedkit.core.workflow.pipeline import DEFAULT_OPTIONS
+
+    if options.get("options") is not None:
+        return options["options"]
+    keys = ("voltage_kv", "pixel_size_um", "min_snr", "d_tolerance_pct", "angle_tolerance_deg", "max_index", "top")
+    return DEFAULT_OPTIONS.replace(**{k: options.get(k) for k in keys})
 
 
 def _analyse_one(path: str, options: dict, out_dir: str | None, bundle: bool, stem: str | None = None) -> BatchItem:
@@ -80,16 +96,17 @@ def _analyse_one(path: str, options: dict, out_dir: str | None, bundle: bool, st
 
     try:
         image = read_pattern(path)
+        opts = _pipeline_options(options)
         if options.get("standard") is not None:
-            analysis = analyse_ring_pattern(image, standard=options["standard"], voltage_kv=options.get("voltage_kv"))
+            analysis = analyse_ring_pattern(image, standard=options["standard"], options=opts,
+                                            reproducibility_pct=options.get("reproducibility_pct"))
         else:
             analysis = analyse_spot_pattern(
                 image, phases=options.get("phases", ()), calibration=options.get("calibration"),
-                camera_constant_px_A=options.get("camera_constant_px_A"), voltage_kv=options.get("voltage_kv"),
-                d_tolerance_pct=options.get("d_tolerance_pct", 2.5),
-                angle_tolerance_deg=options.get("angle_tolerance_deg", 2.0),
-                max_index=options.get("max_index", 10), top=options.get("top", 5),
-                min_snr=options.get("min_snr", 5.0))
+                camera_constant_px_A=options.get("camera_constant_px_A"),
+                camera_constant_sigma_px_A=options.get("camera_constant_sigma_px_A"),
+                reproducibility_pct=options.get("reproducibility_pct"),
+                internal_standard=options.get("internal_standard"), options=opts)
     except SaedkitError as exc:
         return BatchItem(str(path), False, " ".join(str(exc).split()))
     except MemoryError:
@@ -196,8 +213,11 @@ def run_batch(paths: Sequence[str | os.PathLike], *, options: dict, out_dir: str
     paths : sequence of paths
         Pattern images.
     options : dict
-        Keyword arguments of the analysis: ``phases``, ``calibration`` or
-        ``camera_constant_px_A``, ``voltage_kv``, tolerances; or ``standard``
+        What to run: ``phases``, ``calibration`` (a camera model) or
+        ``camera_constant_px_A`` (with ``camera_constant_sigma_px_A``),
+        ``reproducibility_pct``, ``internal_standard`` (a Phase), and either
+        ``options`` (a :class:`~saedkit.core.workflow.pipeline.PipelineOptions`)
+        or its fields (``voltage_kv``, tolerances, ``top``...); or ``standard``
         (a Phase) to calibrate ring patterns.
     out_dir : path, optional
         Where each pattern's JSON record (or report bundle) goes, and

@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 from saedkit.cli import main
+from tests.record_schema import assert_record_schema
 from saedkit.core.imageio import write_tiff
 from saedkit.core.crystallography.library import find_phase
 from saedkit.core.simulation.render import BeamStop
@@ -44,7 +45,9 @@ def patterns(tmp_path_factory):
 
 def _json(capsys, argv, status=0):
     assert main(argv) == status
-    return json.loads(capsys.readouterr().out)
+    rec = json.loads(capsys.readouterr().out)
+    assert_record_schema(argv, rec)
+    return rec
 
 
 def test_index_calibrated_and_uncalibrated(patterns, capsys):

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import json
 import re
 import subprocess
@@ -11,6 +13,7 @@ import numpy as np
 import pytest
 
 from saedkit.cli import main
+from tests.record_schema import assert_record_schema
 from saedkit.core.distortion import Ellipse
 from saedkit.core.imageio import write_tiff
 from saedkit.core.crystallography.library import find_phase
@@ -45,7 +48,9 @@ def grain(tmp_path):
 
 def _json(capsys, argv):
     assert main(argv) == 0
-    return json.loads(capsys.readouterr().out)
+    rec = json.loads(capsys.readouterr().out)
+    assert_record_schema(argv, rec)
+    return rec
 
 
 def test_calibrate_json_record(film, capsys):
@@ -119,7 +124,10 @@ def test_spots_with_saved_calibration_reports_d(film, grain, capsys):
         if dist[i] < 1.0 and np.isfinite(truth.d_A[i]):
             matched += 1
             assert abs(s["d_A"] / truth.d_A[i] - 1) < 0.01  # acceptance: within 1 % of the truth
-            assert 0 < s["d_sigma_A"] < 0.01 * s["d_A"]
+            # total σ = statistical (small here) and the default 1 % reproducibility of K, in quadrature
+            assert 0 < s["d_stat_sigma_A"] < 0.01 * s["d_A"]
+            assert s["d_sys_sigma_A"] == pytest.approx(0.01 * s["d_A"], rel=1e-9)
+            assert s["d_sigma_A"] == pytest.approx(math.hypot(s["d_stat_sigma_A"], s["d_sys_sigma_A"]), rel=1e-9)
             assert {"x", "y", "intensity", "snr", "radius_px"} <= set(s)
     assert matched >= 8
 

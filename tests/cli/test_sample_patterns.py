@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 
 from saedkit.cli import main
+from tests.record_schema import assert_record_schema
 from saedkit.core.crystallography.library import find_phase
 from saedkit.core.crystallography.structure_factors import canonical_indices
 
@@ -22,7 +23,9 @@ def _truth(name):
 
 def _run(capsys, argv):
     assert main(argv) == 0
-    return json.loads(capsys.readouterr().out)
+    rec = json.loads(capsys.readouterr().out)
+    assert_record_schema(argv, rec)
+    return rec
 
 
 def _family(phase, uvw):

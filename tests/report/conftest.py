@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import numpy as np
+
+from saedkit.core.calibration.camera import EnteredCalibration
 import pytest
 
 from saedkit.core.workflow.analysis import Analysis
@@ -32,7 +34,9 @@ def spot_analysis() -> Analysis:
                             camera_constant_sigma_px_A=0.3, image_shape=pim.shape)
     params = {"phases": ["Si"], "camera_constant_px_A": 300.0, "camera_constant_sigma_px_A": 0.3,
               "d_tolerance_pct": 2.5, "angle_tolerance_deg": 2.0, "note": "costs $5 $6"}
-    return Analysis(image=pim, centre=centre, spots=tuple(spots), match=match, parameters=params)
+    # a typed-in K is an EnteredCalibration from the edge on (no reproducibility term here)
+    cal = EnteredCalibration(300.0, 0.3, reproducibility_pct=0.0)
+    return Analysis(image=pim, centre=centre, spots=tuple(spots), match=match, calibration=cal, parameters=params)
 
 
 @pytest.fixture(scope="session")

@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 
 from saedkit import __version__
+from saedkit.core.calibration.camera import EnteredCalibration
 from saedkit.core.workflow.analysis import Analysis
 from saedkit.core.detection.centre import CentreResult
 from saedkit.core.distortion import Ellipse
@@ -42,16 +43,9 @@ def _spot(x, y, *, s=0.1, intensity=100.0):
                 peak=50.0, snr=20.0, width_px=1.5)
 
 
-@dataclasses.dataclass(frozen=True)
-class _Entered:
-    """A calibration typed in by hand (K, σK and an ellipse only)."""
-
-    camera_constant_px_A: float
-    camera_constant_sigma_px_A: float
-    ellipse: Ellipse = Ellipse(0.0, 0.0)
-
-    def to_dict(self):
-        return {"camera_constant_px_A": self.camera_constant_px_A}
+def _Entered(k: float, sigma: float, ellipse: Ellipse = Ellipse(0.0, 0.0)) -> EnteredCalibration:
+    """A calibration typed in by hand (K, σK and an ellipse only; no reproducibility term)."""
+    return EnteredCalibration(k, sigma, ellipse, reproducibility_pct=0.0)
 
 
 # ----------------------------------------------------------------------------- CSV

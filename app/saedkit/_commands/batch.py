@@ -7,6 +7,7 @@ import argparse
 from saedkit._commands._calib_options import add_calibration_options, resolve_calibration_options
 from saedkit._commands._common import add_json_option, software_record
 from saedkit._commands._index_options import add_match_options, resolve_phases
+from saedkit._commands.index import add_internal_standard_option
 
 EXAMPLES = """\
 examples:
@@ -42,6 +43,7 @@ def register(sub) -> None:
                    help="skip the patterns OUT/summary.csv lists as finished (after an interrupted run)")
     add_match_options(p, phases_required=False)
     add_calibration_options(p)
+    add_internal_standard_option(p)
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -53,19 +55,23 @@ def run(args):
 
     if bool(args.standard) == bool(args.phase):
         raise InputError("give --phase (spot patterns to index) or --standard (ring standards), one of the two")
-    options = {"voltage_kv": args.kv, "d_tolerance_pct": args.d_tol, "angle_tolerance_deg": args.angle_tol,
-               "max_index": args.max_index, "top": args.top, "min_snr": args.min_snr}
+    from saedkit._commands.index import pipeline_options
+
+    options = {"options": pipeline_options(args), "reproducibility_pct": args.reproducibility_pct}
     if args.standard:
         options["standard"] = find_phase(args.standard)
+        if args.calibration or args.camera_constant is not None:
+            raise InputError("--standard calibrates the patterns: give no --calibration or --camera-constant with it")
     else:
         options["phases"] = tuple(resolve_phases(args.phase))
-        cal = resolve_calibration_options(args)
-        if cal is not None:
-            K, K_sig, ellipse, source = cal
-            if args.calibration:
-                options["calibration"] = source
-            else:
-                options["camera_constant_px_A"] = K
+        options["calibration"] = resolve_calibration_options(args, voltage_kv=args.kv)
+        if args.internal_standard:
+            if options["calibration"] is not None:
+                raise InputError("--internal-standard calibrates each pattern itself: give no --calibration or "
+                                 "--camera-constant with it")
+            options["internal_standard"] = find_phase(args.internal_standard)
+        elif options["calibration"] is not None:
+            options["reproducibility_pct"] = None  # already applied to the camera model
     if args.resume and not args.out:
         raise InputError("--resume needs --out (the folder of the interrupted run)")
     interrupted = False

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import argparse
 
+from saedkit._calib_reproducibility import choose_reproducibility
+from saedkit._commands._calib_options import add_reproducibility_option
 from saedkit._commands._common import add_json_option, finite_or_none, positive_float, software_record
 
 _EPILOG = """\
@@ -75,6 +77,9 @@ def register(sub) -> None:
     p.add_argument("--binning", type=_positive_int, default=1, metavar="N",
                    help="with --save: camera binning (default 1)")
     p.add_argument("--notes", default="", metavar="TEXT", help="with --save: free text")
+    add_reproducibility_option(p, what="stored with --save (default: estimated from the library's earlier "
+                               "calibrations of the same voltage, camera length and binning when there are 3 or "
+                               "more, else")
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -110,6 +115,11 @@ def run(args):
         cal = calibrate_from_rings(image, phase, voltage_kv=kv, mask=mask, pixel_size_um=px,
                                    d_tolerance_pct=args.d_tol, min_snr=args.min_snr, fit_ellipse=not args.no_ellipse,
                                    exact_camera_equation=not args.small_angle)
+    lib = CalibrationLibrary()
+    nominal_L = args.nominal_camera_length_mm or image.camera_length_mm
+    rep, basis = choose_reproducibility(args.reproducibility_pct, lib, voltage_kv=kv,
+                                        nominal_camera_length_mm=nominal_L, binning=args.binning)
+    cal = cal.with_reproducibility(rep)
     c = cal.centre
     rec = {
         "software": software_record(),
@@ -118,18 +128,21 @@ def run(args):
         "centre_sigma_px": [finite_or_none(c.sigma_x), finite_or_none(c.sigma_y)],
     }
     rec.update({k: v for k, v in cal.to_dict().items() if k not in ("centre_px", "centre_sigma_px")})
+    rec["reproducibility_basis"] = basis
 
     lines = [
         f"{args.image}: {phase.name} at {kv:g} kV — quality {cal.quality}",
-        f"K = {cal.camera_constant_px_A:.3f} ± {cal.camera_constant_sigma_px_A:.2g} px·Å "
-        f"(relative {100 * cal.camera_constant_rel_sigma:.2g} %)",
+        f"K = {cal.camera_constant_px_A:.3f} ± {cal.camera_constant_total_sigma_px_A:.2g} px·Å "
+        f"(total {100 * cal.camera_constant_total_rel_sigma:.2g} %: fit {cal.camera_constant_sigma_px_A:.2g}, "
+        f"reproducibility {cal.reproducibility_pct:.2g} % — {basis})",
         f"centre (x, y) = ({c.x:.3f}, {c.y:.3f}) ± ({c.sigma_x:.2g}, {c.sigma_y:.2g}) px",
         f"ellipse e = {100 * cal.ellipse.ellipticity:.3f} ± {100 * cal.ellipticity_sigma:.2g} % at "
         f"{cal.ellipse.major_axis_deg:.1f} ± {min(cal.major_axis_sigma_deg, 90):.2g}°",
     ]
     if cal.camera_length_mm is not None:
         lines.append(f"λL = {cal.lambda_L_mm_A:.4f} ± {cal.lambda_L_sigma_mm_A:.2g} mm·Å, camera length "
-                     f"L = {cal.camera_length_mm:.1f} ± {cal.camera_length_sigma_mm:.2g} mm (pixel {px:g} µm)")
+                     f"L = {cal.camera_length_mm:.1f} ± {cal.camera_length_sigma_mm:.2g} mm (pixel {px:g} µm; "
+                     f"statistical {cal.camera_length_stat_sigma_mm:.2g}, systematic {cal.camera_length_sys_sigma_mm:.2g})")
     else:
         lines.append("λL and the camera length need the pixel size (--pixel-size-um)")
     lines += ["", f"  {'hkl':9s} {'d (Å)':>8s} {'R (px)':>10s} {'± (px)':>8s} {'resid (px)':>11s} {'resid (%)':>10s}"]
@@ -142,10 +155,9 @@ def run(args):
     for w in cal.warnings:
         lines.append(f"warning: {w}")
     if args.save:
-        lib = CalibrationLibrary()
         saved = SavedCalibration.from_calibration(
             cal, name=args.save, instrument=args.instrument,
-            nominal_camera_length_mm=args.nominal_camera_length_mm or image.camera_length_mm,
+            nominal_camera_length_mm=nominal_L,
             binning=args.binning, notes=args.notes)
         lib.save(saved, overwrite=args.overwrite)
         rec["saved"] = {"name": saved.name, "library": str(lib.path),

@@ -109,12 +109,20 @@ def run(args):
     for h in hist:
         lines.append(f"{h.date:22s} {h.name:28s} {h.camera_constant_px_A:12.3f} {h.camera_constant_sigma_px_A:8.3f} "
                      f"{100 * h.relative_change:+9.3f}%")
+    from saedkit.core.calibration.library import estimate_reproducibility_pct
+
+    est = estimate_reproducibility_pct(hist)
+    rec["reproducibility_pct_estimate"] = est
+    lines.append(f"reproducibility of K from these {len(hist)}: {est:.2g} % (what `calibrate` uses for a new one)"
+                 if est is not None else "reproducibility of K: 3 or more calibrations needed for an estimate")
     return rec, "\n".join(lines)
 
 
 def _full(c) -> dict:
     d = c.to_dict()
     d["camera_constant_rel_sigma"] = c.camera_constant_rel_sigma
+    d["camera_constant_total_sigma_px_A"] = c.camera_constant_total_sigma_px_A
+    d["camera_length_sigma_mm"] = c.camera_length_sigma_mm
     d["camera_length_mm"] = c.camera_length_mm
     d["lambda_L_mm_A"] = c.lambda_L_mm_A
     return d

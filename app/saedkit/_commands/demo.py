@@ -43,7 +43,8 @@ def run(args):
     phases = [find_phase(n) for n in files.grain_phases]
     rec = {"software": software_record(), "folder": str(out), "calibration": saved.to_dict(), "grains": {}}
     cal = film.calibration
-    lines = [f"film: K = {cal.camera_constant_px_A:.3f} ± {cal.camera_constant_sigma_px_A:.3f} px·Å, "
+    lines = [f"film: K = {cal.camera_constant_px_A:.3f} ± {cal.camera_constant_total_sigma_px_A:.2g} px·Å "
+             f"(fit {cal.camera_constant_sigma_px_A:.2g}, reproducibility {cal.reproducibility_pct:g} %), "
              f"ellipse {100 * cal.ellipse.ellipticity:.2f} % at {cal.ellipse.major_axis_deg:.1f}°, "
              f"{len(cal.rings)} rings; saved as {saved.name!r}"]
     for key, path in (("grain_a", files.grain_a), ("grain_b", files.grain_b)):

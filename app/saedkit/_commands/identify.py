@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from saedkit._commands._calib_options import add_calibration_options, resolve_calibration_options
+from saedkit._commands._calib_options import add_calibration_options, describe_camera, resolve_calibration_options
 from saedkit._commands._common import add_json_option, positive_float, software_record
 
 EXAMPLES = """\
@@ -38,11 +38,11 @@ def run(args):
     names = args.phase or [e.name for e in LIBRARY]
     phases = [find_phase(n) for n in names]
     image = read_pattern(args.image)
-    K, K_sig, ellipse, source = resolve_calibration_options(args)
-    analysis = analyse_ring_pattern(image, camera_constant_px_A=K, phases=phases, d_tolerance_pct=args.d_tol)
+    camera = resolve_calibration_options(args)
+    analysis = analyse_ring_pattern(image, calibration=camera, phases=phases, d_tolerance_pct=args.d_tol)
     rec = analysis.to_dict()
     rec["software"] = software_record()
-    lines = [f"{args.image}: {len(analysis.ring_fit.rings)} rings, K = {K:.2f} px·Å"]
+    lines = [f"{args.image}: {len(analysis.ring_fit.rings)} rings; {describe_camera(camera)}"]
     pid = analysis.phase_id
     if pid is None:
         lines.append("no rings to identify")

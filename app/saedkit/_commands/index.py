@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from saedkit._commands._calib_options import add_calibration_options, resolve_calibration_options
+from saedkit._commands._calib_options import add_calibration_options, describe_camera, resolve_calibration_options
 from saedkit._commands._common import add_json_option, software_record
 from saedkit._commands._index_options import add_match_options, describe_candidates, resolve_phases
 
@@ -13,6 +13,7 @@ examples:
   saedkit index grain.tif --phase Ni --phase Fe                     # uncalibrated: K is fitted
   saedkit index grain.tif --phase Ni --calibration "KB-7 200 kV CL400 bin2" --json
   saedkit index grain.tif --phase my_phase.cif --camera-constant 343.4 --kv 200 --max-index 6
+  saedkit index grain_on_au.tif --phase Ni --internal-standard Au --kv 200       # gold rings on the same grid
 """
 
 
@@ -26,29 +27,44 @@ def register(sub) -> None:
     p.add_argument("image", help="pattern image (TIFF, PNG, JPEG, MRC or NPY)")
     add_match_options(p)
     add_calibration_options(p)
+    add_internal_standard_option(p)
     add_json_option(p)
     p.set_defaults(func=run)
 
 
+def add_internal_standard_option(p) -> None:
+    """``--internal-standard NAME|CIF``: a ring standard on the same pattern calibrates it."""
+    p.add_argument("--internal-standard", metavar="NAME|CIF",
+                   help="a ring standard recorded in the same pattern as the specimen (e.g. Au evaporated on "
+                   "the grid): K is fitted on its rings and the spots are measured with it, with a small "
+                   "reproducibility term (0.1 %%)")
+
+
+def pipeline_options(args):
+    """The PipelineOptions of the match options (shared with `report` and `batch`)."""
+    from saedkit.core.workflow.pipeline import DEFAULT_OPTIONS
+
+    return DEFAULT_OPTIONS.replace(voltage_kv=args.kv, min_snr=args.min_snr, d_tolerance_pct=args.d_tol,
+                                   angle_tolerance_deg=args.angle_tol, max_index=args.max_index, top=args.top)
+
+
 def run_analysis(args):
     """The Analysis behind `index` (shared with `report`)."""
+    from saedkit.core.crystallography.library import find_phase
+    from saedkit.core.errors import InputError
     from saedkit.core.imageio import read_pattern
     from saedkit.core.workflow.pipeline import analyse_spot_pattern
 
     phases = resolve_phases(args.phase)
     image = read_pattern(args.image)
-    cal = resolve_calibration_options(args)
-    kwargs = {}
-    if cal is not None:
-        K, K_sig, ellipse, source = cal
-        if getattr(args, "calibration", None):
-            kwargs["calibration"] = source
-        else:
-            kwargs["camera_constant_px_A"] = K
-            kwargs["camera_constant_sigma_px_A"] = K_sig
-    return analyse_spot_pattern(
-        image, phases=phases, voltage_kv=args.kv, min_snr=args.min_snr, d_tolerance_pct=args.d_tol,
-        angle_tolerance_deg=args.angle_tol, max_index=args.max_index, top=args.top, **kwargs)
+    camera = resolve_calibration_options(args, voltage_kv=args.kv)
+    standard = getattr(args, "internal_standard", None)
+    if standard and camera is not None:
+        raise InputError("--internal-standard calibrates the pattern itself: give no --calibration or "
+                         "--camera-constant with it")
+    return analyse_spot_pattern(image, phases=phases, calibration=camera, options=pipeline_options(args),
+                                internal_standard=find_phase(standard) if standard else None,
+                                reproducibility_pct=getattr(args, "reproducibility_pct", None) if standard else None)
 
 
 def run(args):
@@ -59,6 +75,8 @@ def run(args):
     c = analysis.centre
     lines = [f"{args.image}: centre ({c.x:.2f}, {c.y:.2f}) ± ({c.sigma_x:.2f}, {c.sigma_y:.2f}) px, "
              f"{len(analysis.spots)} spots"]
+    if analysis.calibration is not None:
+        lines.append("spacings with " + describe_camera(analysis.calibration))
     if m is None:
         lines.append("too few spots to index (need 3 or more)")
     else:

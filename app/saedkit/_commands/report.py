@@ -7,6 +7,7 @@ import argparse
 from saedkit._commands._calib_options import add_calibration_options
 from saedkit._commands._common import add_json_option, positive_float, software_record
 from saedkit._commands._index_options import add_match_options
+from saedkit._commands.index import add_internal_standard_option
 
 EXAMPLES = """\
 examples:
@@ -29,6 +30,7 @@ def register(sub) -> None:
     p.add_argument("--pixel-size-um", type=positive_float, metavar="P", help="detector pixel size in µm (ring standard)")
     add_match_options(p, phases_required=False)
     add_calibration_options(p)
+    add_internal_standard_option(p)
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -44,8 +46,11 @@ def run(args):
         from saedkit.core.crystallography.library import find_phase
         from saedkit.core.workflow.pipeline import analyse_ring_pattern
 
+        if args.calibration or args.camera_constant is not None:
+            raise InputError("--standard calibrates the pattern: give no --calibration or --camera-constant with it")
         analysis = analyse_ring_pattern(read_pattern(args.image), standard=find_phase(args.standard),
-                                        voltage_kv=args.kv, pixel_size_um=args.pixel_size_um)
+                                        voltage_kv=args.kv, pixel_size_um=args.pixel_size_um,
+                                        reproducibility_pct=args.reproducibility_pct)
     else:
         if not args.phase:
             raise InputError("give at least one --phase to index a spot pattern, or --standard for a ring standard")

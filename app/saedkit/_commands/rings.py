@@ -4,7 +4,12 @@ from __future__ import annotations
 
 import argparse
 
-from saedkit._commands._calib_options import add_calibration_options, calibration_source_record, resolve_calibration_options
+from saedkit._commands._calib_options import (
+    add_calibration_options,
+    calibration_source_record,
+    describe_camera,
+    resolve_calibration_options,
+)
 from saedkit._commands._common import add_json_option, finite_or_none, positive_float, software_record
 
 _EPILOG = """\
@@ -39,30 +44,16 @@ def register(sub) -> None:
 
 
 def run(args):
-    from types import SimpleNamespace
-
-    import numpy as np
-
-    from saedkit.core.calibration.calibrate import calculate_d_from_radius_array, calculate_d_sigma_from_radius_array
-    from saedkit.core.distortion import NO_DISTORTION
     from saedkit.core.imageio import read_pattern
-    from saedkit.core.detection.masks import find_auto_mask
-    from saedkit.core.detection.rings import find_rings
+    from saedkit.core.measure import measure_radii
+    from saedkit.core.workflow.pipeline import DEFAULT_OPTIONS, detect_rings, prepare_mask
 
-    resolved = resolve_calibration_options(args)
+    camera = resolve_calibration_options(args)
     image = read_pattern(args.image)
-    mask = np.asarray(image.mask, bool) | find_auto_mask(image.data, saturation_value=image.saturation_value)
-    fit = find_rings(image.data, mask=mask, min_snr=args.min_snr, fit_ellipse=not args.no_ellipse)
+    opts = DEFAULT_OPTIONS.replace(ring_min_snr=args.min_snr, fit_ellipse=not args.no_ellipse)
+    fit = detect_rings(image, prepare_mask(image), options=opts)
     c, ell = fit.centre, fit.ellipse
-    R = np.array([r.radius_px for r in fit.rings])
-    sR = np.array([r.radius_sigma_px for r in fit.rings])
-    d = sd = None
-    if resolved is not None:
-        K, sK, _, source = resolved
-        cal_like = source if not isinstance(source, str) else SimpleNamespace(
-            camera_constant_px_A=K, camera_constant_sigma_px_A=sK, ellipse=NO_DISTORTION)
-        d = calculate_d_from_radius_array(R, cal_like)
-        sd = calculate_d_sigma_from_radius_array(R, sR, cal_like)
+    m = measure_radii([r.radius_px for r in fit.rings], [r.radius_sigma_px for r in fit.rings], camera)
     rings = []
     for i, r in enumerate(fit.rings):
         entry = {
@@ -75,15 +66,19 @@ def run(args):
             "snr": r.snr,
             "n_points": r.n_points,
         }
-        if d is not None:
-            entry["d_A"] = finite_or_none(d[i])
-            entry["d_sigma_A"] = finite_or_none(sd[i])
+        if camera is not None:
+            row = m.row(i)
+            for k in ("d_A", "d_sigma_A", "d_stat_sigma_A", "d_sys_sigma_A", "g_per_nm", "g_sigma_per_nm",
+                      "g_stat_sigma_per_nm", "g_sys_sigma_per_nm"):
+                entry[k] = row[k]
         rings.append(entry)
     rec = {
         "software": software_record(),
         "image": image.to_dict(),
+        "parameters": opts.to_dict(),
         "centre_px": [c.x, c.y],
         "centre_sigma_px": [finite_or_none(c.sigma_x), finite_or_none(c.sigma_y)],
+        "centre_method": c.method,
         "ellipse": {
             "ellipticity": ell.ellipticity,
             "major_axis_deg": ell.major_axis_deg,
@@ -92,31 +87,32 @@ def run(args):
         },
         "residual_rms_px": finite_or_none(fit.residual_rms_px),
         "rings": rings,
-        "calibration": calibration_source_record(resolved),
+        "calibration": calibration_source_record(camera),
     }
-    if resolved is not None:
-        rec["camera_constant_px_A"] = resolved[0]
-        rec["camera_constant_rel_sigma"] = resolved[1] / resolved[0]
+    if camera is not None:
+        from saedkit.core.calibration.camera import camera_terms
+
+        rec["camera"] = camera_terms(camera).to_dict()
+        rec["camera_constant_px_A"] = camera.camera_constant_px_A
+        rec["camera_constant_rel_sigma"] = camera.camera_constant_rel_sigma
     lines = [
         f"{args.image}: {len(rings)} ring{'s' if len(rings) != 1 else ''}",
         f"centre (x, y) = ({c.x:.3f}, {c.y:.3f}) ± ({c.sigma_x:.2g}, {c.sigma_y:.2g}) px",
         f"ellipse e = {100 * ell.ellipticity:.3f} ± {100 * fit.ellipticity_sigma:.2g} % at "
         f"{ell.major_axis_deg:.1f} ± {min(fit.major_axis_sigma_deg, 90):.2g}°",
     ]
-    if resolved is not None:
-        K, sK, _, source = resolved
-        src = "entered" if isinstance(source, str) else f"calibration {source.name!r}"
-        lines.append(f"K = {K:.3f} ± {sK:.2g} px·Å ({src})")
+    if camera is not None:
+        lines.append(describe_camera(camera))
     lines.append("")
     head = f"  {'R (px)':>10s} {'± (px)':>8s} {'SNR':>7s}"
-    if d is not None:
+    if camera is not None:
         head += f" {'d (Å)':>9s} {'± (Å)':>8s}"
     lines.append(head)
     for i, r in enumerate(fit.rings):
         line = f"  {r.radius_px:10.3f} {r.radius_sigma_px:8.3f} {r.snr:7.1f}"
-        if d is not None:
-            line += f" {d[i]:9.4f} {sd[i]:8.4f}"
+        if camera is not None:
+            line += f" {m.d_A[i]:9.4f} {m.d_sigma_A[i]:8.4f}"
         lines.append(line)
-    if resolved is None:
+    if camera is None:
         lines.append("(no calibration: give --calibration NAME or --camera-constant K for d-spacings)")
     return rec, "\n".join(lines)

@@ -4,8 +4,13 @@ from __future__ import annotations
 
 import argparse
 
-from saedkit._commands._calib_options import add_calibration_options, calibration_source_record, resolve_calibration_options
-from saedkit._commands._common import add_json_option, finite_or_none, positive_float, software_record
+from saedkit._commands._calib_options import (
+    add_calibration_options,
+    calibration_source_record,
+    describe_camera,
+    resolve_calibration_options,
+)
+from saedkit._commands._common import add_json_option, positive_float, software_record
 
 _EPILOG = """\
 examples:
@@ -41,98 +46,53 @@ def register(sub) -> None:
 
 def run(args):
     import math
-    from types import SimpleNamespace
 
-    import numpy as np
-
-    from saedkit.core.calibration.calibrate import calculate_d_from_offset_array, calculate_d_sigma_array
-    from saedkit.core.detection.centre import find_centre_spots
-    from saedkit.core.distortion import NO_DISTORTION
     from saedkit.core.errors import InputError
     from saedkit.core.imageio import read_pattern
-    from saedkit.core.detection.masks import find_auto_mask
-    from saedkit.core.detection.spots import find_spots
+    from saedkit.core.workflow.analysis import Analysis
+    from saedkit.core.workflow.pipeline import DEFAULT_OPTIONS, detect_spots, locate_centre, prepare_mask
 
     if args.max_spots < 1:
         raise InputError(f"--max-spots must be >= 1, got {args.max_spots}")
-    resolved = resolve_calibration_options(args)
+    camera = resolve_calibration_options(args)
     image = read_pattern(args.image)
-    mask = np.asarray(image.mask, bool) | find_auto_mask(image.data, saturation_value=image.saturation_value)
-    centre = find_centre_spots(image.data, mask=mask)
-    spots = find_spots(image.data, mask=mask, centre_xy=centre.xy, min_snr=args.min_snr, max_spots=args.max_spots)
-    if resolved is not None:
-        K, sK, ell, source = resolved
-        cal_like = source if not isinstance(source, str) else SimpleNamespace(
-            camera_constant_px_A=K, camera_constant_sigma_px_A=sK, ellipse=NO_DISTORTION)
-    else:
-        ell, cal_like = NO_DISTORTION, None
-    xy = np.array([[s.x, s.y] for s in spots], float).reshape(-1, 2)
-    off = xy - centre.xy
-    # position uncertainty of the offset: the spot's and the centre's, in quadrature
-    sig = np.column_stack([
-        np.hypot([s.sigma_x for s in spots], centre.sigma_x),
-        np.hypot([s.sigma_y for s in spots], centre.sigma_y),
-    ]).reshape(-1, 2)
-    sig = np.where(np.isfinite(sig), sig, 0.0)
-    ideal = ell.correct_array(off) if len(off) else off
-    R = np.hypot(*ideal.T) if len(off) else np.zeros(0)
-    # σ_R: the offset's uncertainty along the ideal radial direction (through D⁻¹)
-    dinv = ell.inverse_matrix
-    with np.errstate(invalid="ignore", divide="ignore"):
-        grad = (ideal / R[:, None]) @ dinv if len(off) else np.zeros((0, 2))
-    sR = np.sqrt((grad[:, 0] * sig[:, 0]) ** 2 + (grad[:, 1] * sig[:, 1]) ** 2) if len(off) else np.zeros(0)
-    angle = np.degrees(np.arctan2(off[:, 1], off[:, 0])) if len(off) else np.zeros(0)
-    d = sd = None
-    if cal_like is not None and len(off):
-        d = calculate_d_from_offset_array(off, cal_like)
-        sd = calculate_d_sigma_array(off, sig, cal_like)
-    out = []
-    for i, s in enumerate(spots):
-        e = {
-            "x": s.x, "y": s.y,
-            "sigma_x_px": finite_or_none(s.sigma_x), "sigma_y_px": finite_or_none(s.sigma_y),
-            "intensity": s.intensity, "intensity_sigma": finite_or_none(s.intensity_sigma),
-            "peak": s.peak, "snr": s.snr, "width_px": s.width_px,
-            "radius_px": float(R[i]), "radius_sigma_px": finite_or_none(sR[i]), "angle_deg": float(angle[i]),
-        }
-        if d is not None:
-            e["d_A"] = finite_or_none(d[i])
-            e["d_sigma_A"] = finite_or_none(sd[i])
-        out.append(e)
-    rec = {
-        "software": software_record(),
-        "image": image.to_dict(),
-        "centre_px": [centre.x, centre.y],
-        "centre_sigma_px": [finite_or_none(centre.sigma_x), finite_or_none(centre.sigma_y)],
-        "centre_method": centre.method,
-        "spots": out,
-        "calibration": calibration_source_record(resolved),
-    }
-    if resolved is not None:
-        rec["camera_constant_px_A"] = resolved[0]
-        rec["camera_constant_rel_sigma"] = resolved[1] / resolved[0]
-        rec["ellipse"] = ell.to_dict()
+    opts = DEFAULT_OPTIONS.replace(min_snr=args.min_snr, max_spots=args.max_spots)
+    mask = prepare_mask(image)
+    centre = locate_centre(image, mask)
+    spots = detect_spots(image, mask, centre, options=opts)
+    analysis = Analysis(image=image, centre=centre, spots=spots, calibration=camera,
+                        parameters={"min_snr": args.min_snr, "max_spots": args.max_spots})
+    m = analysis.measure_spots()
+    rec = analysis.to_dict()
+    rec["software"] = software_record()
+    rec["calibration"] = calibration_source_record(camera)
+    if camera is not None:
+        rec["camera_constant_px_A"] = camera.camera_constant_px_A
+        rec["camera_constant_rel_sigma"] = camera.camera_constant_rel_sigma
+        rec["ellipse"] = camera.ellipse.to_dict()
+    n = len(spots)
     lines = [
-        f"{args.image}: {len(out)} spot{'s' if len(out) != 1 else ''}",
+        f"{args.image}: {n} spot{'s' if n != 1 else ''}",
         f"centre (x, y) = ({centre.x:.3f}, {centre.y:.3f}) ± ({centre.sigma_x:.2g}, {centre.sigma_y:.2g}) px "
         f"[{centre.method}]",
     ]
-    if resolved is not None:
-        K, sK, _, source = resolved
-        src = "entered" if isinstance(source, str) else f"calibration {source.name!r}"
-        lines.append(f"K = {K:.3f} ± {sK:.2g} px·Å ({src}); ellipse e = {100 * ell.ellipticity:.2f} % "
+    if camera is not None:
+        ell = camera.ellipse
+        lines.append(describe_camera(camera) + f"; ellipse e = {100 * ell.ellipticity:.2f} % "
                      f"at {ell.major_axis_deg:.1f}°")
     lines.append("")
     head = f"  {'x':>9s} {'y':>9s} {'intensity':>11s} {'SNR':>7s} {'R (px)':>9s}"
-    if d is not None:
+    if camera is not None:
         head += f" {'d (Å)':>8s} {'± (Å)':>7s}"
     lines.append(head)
     for i, s in enumerate(spots):
-        line = f"  {s.x:9.2f} {s.y:9.2f} {s.intensity:11.1f} {s.snr:7.1f} {R[i]:9.2f}"
-        if d is not None:
-            dv = d[i]
-            line += f" {dv:8.4f} {sd[i]:7.4f}" if math.isfinite(dv) else f" {'-':>8s} {'-':>7s}"
+        line = f"  {s.x:9.2f} {s.y:9.2f} {s.intensity:11.1f} {s.snr:7.1f} {m.radius_px[i]:9.2f}"
+        if camera is not None:
+            dv = m.d_A[i]
+            line += f" {dv:8.4f} {m.d_sigma_A[i]:7.4f}" if math.isfinite(dv) else f" {'-':>8s} {'-':>7s}"
         lines.append(line)
-    if resolved is None:
+    if camera is None:
         lines.append("(no calibration: give --calibration NAME or --camera-constant K for d-spacings)")
+    else:
+        lines.append("(± is the total standard uncertainty: statistical and reproducibility of K; parts in --json)")
     return rec, "\n".join(lines)

@@ -455,26 +455,25 @@ def pick_ellipse(analysis) -> Ellipse:
 
 
 def index_camera_constant(analysis) -> tuple[float | None, float | None, str]:
-    """(K, σK, where from) used for spacings: the calibration's when the match used it, else the
-    chosen candidate's refined K, else the calibration's, else (None, None, "none")."""
-    cand = analysis.candidate
-    info = summarize_calibration(getattr(analysis, "calibration", None), image=getattr(analysis, "image", None))
-    match = getattr(analysis, "match", None)
-    if cand is not None:
-        calibrated = bool(getattr(match, "calibrated", False))
-        if calibrated and info is not None and info.camera_constant_px_A:
-            return info.camera_constant_px_A, info.camera_constant_sigma_px_A, "calibration (used by the match)"
-        if calibrated:  # a camera constant given to the match without a calibration object
-            params = getattr(analysis, "parameters", None) or {}
-            k = finite(params.get("camera_constant_px_A"))
-            if k:
-                return k, finite(params.get("camera_constant_sigma_px_A")), "given to the match"
-        k = finite(getattr(cand, "camera_constant_px_A", None))
-        if k:
-            return k, finite(getattr(cand, "camera_constant_sigma_px_A", None)), "refined by the zone-axis match"
-    if info is not None and info.camera_constant_px_A:
-        return info.camera_constant_px_A, info.camera_constant_sigma_px_A, "calibration"
-    return None, None, "none"
+    """(K, total σK, where from) of the spacings: the camera model of :attr:`Analysis.camera`.
+
+    That is the calibration's (fitted, saved or typed in) when there is one,
+    else the chosen candidate's refined K; (None, None, "none") without either.
+    """
+    camera = getattr(analysis, "camera", None)
+    if camera is None:
+        return None, None, "none"
+    from saedkit.core.calibration.camera import camera_terms
+
+    t = camera_terms(camera)
+    if t.source == "match":
+        where = "refined by the zone-axis match"
+    else:
+        where = {"rings": "calibration fitted on rings", "spots": "calibration fitted on spots",
+                 "library": "calibration from the library", "entered": "entered by hand"}.get(t.source, t.source)
+        where += (f" ({t.name})" if t.name and t.source == "library" else "")
+        where += f"; reproducibility {format_sig(t.reproducibility_pct, 2)} % included"
+    return t.camera_constant_px_A, t.total_sigma_px_A, where
 
 
 def describe_unindexed(analysis) -> str:

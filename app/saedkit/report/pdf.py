@@ -242,9 +242,10 @@ def _page_pattern(page: _Page, analysis) -> None:
 
 
 _TABLE_COLUMNS = [
-    ("", 0.42, "left"), ("#", 0.3, "right"), ("x (px)", 0.62, "right"), ("y (px)", 0.62, "right"),
-    ("R (px)", 0.95, "right"), ("d (Å)", 1.15, "right"), ("|g| (nm⁻¹)", 0.7, "right"), ("(hkl)", 0.75, "center"),
-    ("intensity", 0.72, "right"), ("SNR", 0.45, "right"), ("Δd (%)", 0.55, "right"),
+    ("", 0.42, "left"), ("#", 0.3, "right"), ("x (px)", 0.55, "right"), ("y (px)", 0.55, "right"),
+    ("R (px)", 0.85, "right"), ("d ± σ (Å)", 1.05, "right"), ("σ stat, sys", 0.8, "right"),
+    ("|g| (nm⁻¹)", 0.65, "right"), ("(hkl)", 0.7, "center"),
+    ("intensity", 0.6, "right"), ("SNR", 0.4, "right"), ("Δd (%)", 0.5, "right"),
 ]
 
 
@@ -265,6 +266,8 @@ def _table_rows(analysis, table) -> list[list[str]]:
             r["feature"], str(r["index"]), num("x_px", ".2f"), num("y_px", ".2f"),
             format_value_sigma(r["R_px"], r["R_sigma_px"], max_decimals=3) if finite(r["R_px"]) is not None else "",
             format_value_sigma(r["d_A"], r["d_sigma_A"], max_decimals=5) if finite(r["d_A"]) is not None else "",
+            (f"{format_sig(r['d_stat_sigma_A'], 2)}, {format_sig(r['d_sys_sigma_A'], 2)}"
+             if finite(r["d_A"]) is not None else ""),
             num("g_per_nm", ".3f"), label, _fmt_intensity(r.get("intensity")), num("snr", ".1f"),
             num("d_error_pct", ".2f"),
         ])
@@ -280,7 +283,9 @@ def _page_table(page: _Page, analysis, rows: list[list[str]], part: int, parts: 
         if c is not None:
             notes.append(f"Centre: x = {format_value_sigma(c.x, c.sigma_x)}, y = {format_value_sigma(c.y, c.sigma_y)}"
                          f" px ({c.source}); R is corrected for the elliptical distortion.")
-        notes.append("d = K / R (camera equation R·d = λL), |g| = 1/d; ± are standard uncertainties; "
+        notes.append("d = K / R (camera equation R·d = λL), |g| = 1/d; ± is the total standard uncertainty: the "
+                     "statistical part (positions, centre, fit of K) and the systematic part (reproducibility "
+                     "of K) in quadrature, both in the column beside it; "
                      "Δd = (measured − predicted) / predicted; * kinematically forbidden (double diffraction).")
         for n in notes:
             for line in _wrap(n, 120):
@@ -298,9 +303,15 @@ def _page_calibration(page: _Page, analysis) -> None:
     y = page.title(title, image_label(analysis))
     items: list[tuple[str, str]] = []
     if info is not None:
-        k, sk, rel = info.camera_constant_px_A, info.camera_constant_sigma_px_A, info.camera_constant_rel_sigma
-        items.append(("Camera constant", f"K = {format_value_sigma(k, sk)} px·Å"
-                                         + (f" (relative {format_sig(100 * rel, 2)} %)" if rel else "")))
+        from saedkit.core.calibration.camera import camera_terms
+
+        t = camera_terms(analysis.calibration)
+        k = t.camera_constant_px_A
+        fit = format_value_sigma(k, t.stat_sigma_px_A) if t.stat_sigma_px_A > 0 else f"{k:g}"
+        items.append(("Camera constant", f"K = {format_value_sigma(k, t.total_sigma_px_A)} px·Å (total "
+                                         f"{format_sig(100 * t.total_sigma_px_A / k, 2)} %): fit K = {fit}, "
+                                         f"reproducibility {format_sig(t.reproducibility_pct, 2)} % = "
+                                         f"{format_sig(t.sys_sigma_px_A, 2)} px·Å"))
         e = info.ellipse
         items.append(("Ellipse", f"ellipticity {format_value_sigma(100 * e.ellipticity, None if info.ellipticity_sigma is None else 100 * info.ellipticity_sigma)} %, "
                                  f"major axis {format_value_sigma(e.major_axis_deg, info.major_axis_sigma_deg, max_decimals=2)}°"))

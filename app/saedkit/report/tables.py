@@ -27,19 +27,16 @@ import numpy as np
 
 from saedkit.core._atomic import write_text_atomic
 from saedkit.core.errors import InputError
-from saedkit.core.uncertainty import calculate_d_sigma, calculate_radius_sigmas
 from saedkit.report._common import (
     CentreInfo,
     finite,
     format_sig,
     format_value_sigma,
     identified_rings,
-    index_camera_constant,
     is_calibration_of_image,
     is_hexagonal,
     json_ready,
     pick_centre,
-    pick_ellipse,
     software_label,
     summarize_calibration,
     zone_text,
@@ -70,6 +67,8 @@ _COLUMN_FORMATS: dict[str, str] = {
     "angle_deg": ".2f",
     "d_A": ".5f",
     "d_sigma_A": "sig2",
+    "d_stat_sigma_A": "sig2",
+    "d_sys_sigma_A": "sig2",
     "g_per_nm": ".5f",
     "g_sigma_per_nm": "sig2",
     "hkl": "indices",
@@ -84,14 +83,16 @@ _COLUMN_FORMATS: dict[str, str] = {
 
 _BASE_COLUMNS = (
     "feature", "index", "x_px", "x_sigma_px", "y_px", "y_sigma_px", "R_px", "R_sigma_px", "angle_deg",
-    "d_A", "d_sigma_A", "g_per_nm", "g_sigma_per_nm", "hkl", "intensity", "intensity_sigma", "snr",
+    "d_A", "d_sigma_A", "d_stat_sigma_A", "d_sys_sigma_A", "g_per_nm", "g_sigma_per_nm", "hkl", "intensity", "intensity_sigma", "snr",
 )
 
 #: What each column means (written under the header block of the CSV).
 COLUMN_NOTES = (
     "x_px, y_px: position (x = column, y = row, origin at the centre of the top-left pixel)",
     "R_px: distance from the centre corrected for the elliptical distortion; angle_deg: from +x towards +y",
-    "d_A = K / R_px (camera equation R·d = λL); g_per_nm = |g| = 10 / d_A; *_sigma_*: standard uncertainties",
+    "d_A = K / R_px (camera equation R·d = λL; exact form when the calibration says); g_per_nm = |g| = 10 / d_A",
+    "d_sigma_A, g_sigma_per_nm: total standard uncertainty = statistical (d_stat_sigma_A: positions, centre, "
+    "fit of K) and systematic (d_sys_sigma_A: reproducibility of K) in quadrature",
     "hkl: Miller indices h k l (hkil: Miller–Bravais) of the named phase; "
     "d_error_pct = (measured − predicted d) / predicted d × 100",
 )
@@ -148,32 +149,6 @@ def _nan(x: Any) -> float:
     return math.nan if v is None else v
 
 
-def _radius(x: float, y: float, sx: float, sy: float, centre: CentreInfo | None, dinv: np.ndarray):
-    """(R, σR, angle) of a point about the centre, ellipse-corrected; NaN without a centre.
-
-    The radial uncertainty projects the spot's and the centre's position
-    covariance, mapped through D⁻¹, on the radial direction (first-order
-    propagation, common practice).
-    """
-    if centre is None or not (math.isfinite(x) and math.isfinite(y)):
-        return math.nan, math.nan, math.nan
-    v_obs = np.array([x - centre.x, y - centre.y])
-    cov = np.diag([
-        (sx if math.isfinite(sx) else 0.0) ** 2 + centre.sigma_x**2,
-        (sy if math.isfinite(sy) else 0.0) ** 2 + centre.sigma_y**2,
-    ])
-    _, r, sr, _ = calculate_radius_sigmas(v_obs, cov, dinv)
-    angle = math.degrees(math.atan2(v_obs[1], v_obs[0]))
-    return r, sr, angle
-
-
-def _g(d: float, sd: float) -> tuple[float, float]:
-    """|g| in nm⁻¹ (= 10 / d_A) and its uncertainty."""
-    if not (math.isfinite(d) and d > 0):
-        return math.nan, math.nan
-    return 10.0 / d, (10.0 * sd / d**2 if math.isfinite(sd) else math.nan)
-
-
 def _nearest_predicted(candidate, x: float, y: float, r: float):
     """The predicted reflection of ``candidate`` within max(3 px, 3 % of R) of (x, y), or None."""
     pred = getattr(candidate, "predicted", ()) or ()
@@ -199,15 +174,14 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
 
     Notes
     -----
-    Spacings, in order of preference:
-
-    1. a spot that the chosen zone-axis candidate indexes takes the candidate's
-       measured spacing (``d = K/R`` about the centre refined with the lattice),
-       its uncertainty propagated as in 2.;
-    2. any other spot, with a candidate or a calibration, ``d = K / |D⁻¹(p − c)|``
-       with ``σd/d = √((σK/K)² + (σR/R)²)``, σR from the spot's and the
-       centre's position uncertainties [1]_;
-    3. without either, d is left empty.
+    Every spot's R, d, |g| and their uncertainties come from
+    :meth:`Analysis.measure_spots` (the one measurement function,
+    :func:`saedkit.core.measure.measure_positions`): the same numbers as the
+    record's ``spots`` and the candidates' spots. The camera is the
+    calibration's when there is one, else the chosen candidate's refined K.
+    ``d = K / |D⁻¹(p − c)|`` (or the exact form), with the statistical σ from
+    the spot's and the centre's position uncertainties and the fit's σ of K,
+    and the systematic σ from the reproducibility of K [1]_.
 
     Rings use the calibration's K; a ring that the calibration assigned to a
     reflection of its standard carries that (hkl) when the calibration was
@@ -218,23 +192,28 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
     .. [1] ISO 25498:2018, Microbeam analysis — Analytical electron
        microscopy — Selected area electron diffraction analysis using a TEM.
     """
+    from saedkit.core.measure import measure_positions, measure_radii
+
     cand = analysis.candidate
     hexagonal = is_hexagonal(cand)
-    centre = pick_centre(analysis, prefer_lattice=cand is not None)
-    dinv = pick_ellipse(analysis).inverse_matrix
-    k, sk, _ = index_camera_constant(analysis)
+    centre = pick_centre(analysis)  # the centre the record's spots are measured about
 
     rows: list[dict] = []
     indexed = [s for s in (getattr(cand, "spots", ()) or ())] if cand is not None else []
     indexed_xy = np.array([[s.x, s.y] for s in indexed], dtype=float).reshape(-1, 2)
     spots = list(analysis.spots or ())
-    from_candidate = not spots and bool(indexed)
-    if from_candidate:  # spots known only through the match
+    if spots:  # the record's own measurement (same centre, same camera): one number everywhere
+        m = analysis.measure_spots()
+    else:  # spots known only through the match
         spots = indexed
+        camera = getattr(analysis, "camera", None)
+        m = measure_positions([[s.x, s.y] for s in spots], 0.0, None if centre is None else (centre.x, centre.y),
+                              None if centre is None else (centre.sigma_x, centre.sigma_y), camera)
     for i, s in enumerate(spots):
         x, y = _nan(s.x), _nan(s.y)
         sx, sy = _nan(getattr(s, "sigma_x", None)), _nan(getattr(s, "sigma_y", None))
-        r, sr, angle = _radius(x, y, sx, sy, centre, dinv)
+        r, sr, angle = float(m.radius_px[i]), float(m.radius_sigma_px[i]), float(m.angle_deg[i])
+        d = float(m.d_A[i])
         hkl = None
         d_err = math.nan
         dd = None
@@ -245,25 +224,20 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
             if dist[j] < 0.5:
                 own = indexed[j]
         if own is not None:
-            # the candidate's spacing; its uncertainty from this spot's own position uncertainty
-            d, sd = _nan(own.d_A), _nan(own.d_sigma_A)
-            if k and math.isfinite(d) and math.isfinite(sr) and r > 0:
-                sd = d * math.hypot((sk or 0.0) / k, sr / r)
             hkl = None if own.hkl is None else tuple(int(v) for v in own.hkl)
             d_err = _nan(own.d_error_pct)
             dd = bool(getattr(own, "forbidden", False)) if hkl is not None else None
         else:
-            d, sd = calculate_d_sigma(r, sr, k, sk)
             p = _nearest_predicted(cand, x, y, r) if cand is not None else None
             if p is not None:
                 hkl = tuple(int(v) for v in p.hkl)
                 d_err = (d - p.d_A) / p.d_A * 100 if math.isfinite(d) else math.nan
                 dd = bool(getattr(p, "forbidden", False))
-        g, sg = _g(d, sd)
         rows.append({
             "feature": "spot", "index": i + 1, "x_px": x, "x_sigma_px": sx, "y_px": y, "y_sigma_px": sy,
-            "R_px": r, "R_sigma_px": sr, "angle_deg": angle, "d_A": d, "d_sigma_A": sd,
-            "g_per_nm": g, "g_sigma_per_nm": sg, "hkl": hkl,
+            "R_px": r, "R_sigma_px": sr, "angle_deg": angle, "d_A": d, "d_sigma_A": float(m.d_sigma_A[i]),
+            "d_stat_sigma_A": float(m.d_stat_sigma_A[i]), "d_sys_sigma_A": float(m.d_sys_sigma_A[i]),
+            "g_per_nm": float(m.g_per_nm[i]), "g_sigma_per_nm": float(m.g_sigma_per_nm[i]), "hkl": hkl,
             "hkil": hkl_tuple_four(hkl) if hexagonal else None,
             "phase": str(cand.phase) if (cand is not None and hkl is not None) else "",
             "intensity": _nan(getattr(s, "intensity", None)),
@@ -273,9 +247,8 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
         })
 
     ring_fit = getattr(analysis, "ring_fit", None)
-    info = summarize_calibration(getattr(analysis, "calibration", None))
-    kr = info.camera_constant_px_A if info is not None else None
-    skr = info.camera_constant_sigma_px_A if info is not None else None
+    calibration = getattr(analysis, "calibration", None)
+    info = summarize_calibration(calibration)
     own_cal = is_calibration_of_image(analysis)
     assigned = [a for a in (info.rings if (info is not None and own_cal) else ())
                 if finite(getattr(a, "radius_px", None))]
@@ -284,9 +257,11 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
     if not ring_list and info is not None and own_cal:  # a calibration of this image, without a ring fit
         ring_list = sorted(list(assigned) + [_Radius(r) for r in info.unassigned_radii_px],
                            key=lambda a: float(a.radius_px))
+    mr = measure_radii([_nan(ring.radius_px) for ring in ring_list],
+                       [_nan(getattr(ring, "radius_sigma_px", None)) for ring in ring_list], calibration)
     for i, ring in enumerate(ring_list):
         r, sr = _nan(ring.radius_px), _nan(getattr(ring, "radius_sigma_px", None))
-        d, sd = calculate_d_sigma(r, sr, kr, skr)
+        d = float(mr.d_A[i])
         hkl, d_err, phase = None, math.nan, ""
         if assigned:
             a = min(assigned, key=lambda a: abs(float(a.radius_px) - r))
@@ -298,16 +273,17 @@ def calculate_measurement_table(analysis) -> MeasurementTable:
                 if d_ref and math.isfinite(d):
                     d_err = (d - d_ref) / d_ref * 100
         if hkl is None and identified and math.isfinite(d):
-            d_m, m = min(identified, key=lambda t: abs(t[0] - d))
+            d_m, mm = min(identified, key=lambda t: abs(t[0] - d))
             if abs(d_m - d) <= 5e-3 * d:  # the same ring (spacings agree to 0.5 %)
-                hkl = tuple(int(v) for v in m.hkl)
-                phase = str(getattr(m, "phase", "") or "")
-                d_err = _nan(getattr(m, "d_error_pct", None))
-        g, sg = _g(d, sd)
+                hkl = tuple(int(v) for v in mm.hkl)
+                phase = str(getattr(mm, "phase", "") or "")
+                d_err = _nan(getattr(mm, "d_error_pct", None))
         rows.append({
             "feature": "ring", "index": i + 1, "x_px": math.nan, "x_sigma_px": math.nan, "y_px": math.nan,
             "y_sigma_px": math.nan, "R_px": r, "R_sigma_px": sr, "angle_deg": math.nan, "d_A": d,
-            "d_sigma_A": sd, "g_per_nm": g, "g_sigma_per_nm": sg, "hkl": hkl, "hkil": None, "phase": phase,
+            "d_sigma_A": float(mr.d_sigma_A[i]), "d_stat_sigma_A": float(mr.d_stat_sigma_A[i]),
+            "d_sys_sigma_A": float(mr.d_sys_sigma_A[i]), "g_per_nm": float(mr.g_per_nm[i]),
+            "g_sigma_per_nm": float(mr.g_sigma_per_nm[i]), "hkl": hkl, "hkil": None, "phase": phase,
             "intensity": _nan(getattr(ring, "height", None)), "intensity_sigma": math.nan,
             "snr": _nan(getattr(ring, "snr", None)), "d_error_pct": d_err, "double_diffraction": None,
         })
@@ -378,10 +354,26 @@ def _metadata(analysis, centre: CentreInfo | None) -> dict:
             v = getattr(info, key)
             if v is not None:
                 meta[f"calibration_{key}"] = f"{v:.6g}"
-    k, sk, k_source = index_camera_constant(analysis)
-    meta["camera_constant_px_A"] = format_value_sigma(k, sk) if k else "none (spacings left empty)"
-    meta["camera_constant_source"] = k_source
+    camera = getattr(analysis, "camera", None)
+    if camera is None:
+        meta["camera_constant_px_A"] = "none (spacings left empty)"
+        meta["camera_constant_source"] = "none"
+    else:
+        from saedkit.core.calibration.camera import camera_terms
+
+        t = camera_terms(camera)
+        meta["camera_constant_px_A"] = format_value_sigma(t.camera_constant_px_A, t.total_sigma_px_A)
+        meta["camera_constant_sigma_parts_px_A"] = (f"statistical {format_sig(t.stat_sigma_px_A, 2)}, "
+                                                    f"systematic {format_sig(t.sys_sigma_px_A, 2)} "
+                                                    f"(reproducibility {format_sig(t.reproducibility_pct, 2)} %)")
+        meta["camera_constant_source"] = ("refined by the zone-axis match" if t.source == "match"
+                                          else f"calibration ({t.source})")
+        if t.exact:
+            meta["camera_equation"] = "exact (R = L tan 2θ)"
     cand = analysis.candidate
+    if cand is not None and finite(getattr(cand, "camera_constant_px_A", None)):
+        meta["candidate_refined_camera_constant_px_A"] = format_value_sigma(
+            cand.camera_constant_px_A, getattr(cand, "camera_constant_sigma_px_A", None))
     if cand is not None:
         match = analysis.match
         meta["phase"] = str(cand.phase)

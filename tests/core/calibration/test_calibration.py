@@ -281,7 +281,11 @@ def test_camera_length_from_pixel_size_and_pattern_image():
     # λL = K·p and L = K·p/λ (camera equation R·d = λL; DESIGN.md conventions)
     assert cal.lambda_L_mm_A == pytest.approx(K * 14e-3)
     assert cal.camera_length_mm == pytest.approx(K * 14e-3 / calculate_wavelength_A(200))
-    assert cal.camera_length_sigma_mm == pytest.approx(cal.camera_length_mm * cal.camera_constant_rel_sigma)
+    # the camera length carries the fit's σ and the reproducibility of K as separate parts, total in quadrature
+    assert cal.camera_length_stat_sigma_mm == pytest.approx(cal.camera_length_mm * cal.camera_constant_rel_sigma)
+    assert cal.camera_length_sys_sigma_mm == pytest.approx(cal.camera_length_mm * cal.reproducibility_pct / 100)
+    assert cal.camera_length_sigma_mm == pytest.approx(math.hypot(cal.camera_length_stat_sigma_mm,
+                                                                  cal.camera_length_sys_sigma_mm))
     assert cal.image_sha256 == pimg.sha256
     rec = cal.to_dict()
     for key in ("camera_constant_px_A", "camera_constant_rel_sigma", "ellipse", "rings", "camera_length_mm",
@@ -458,10 +462,16 @@ def test_d_from_offsets_with_ellipse_correction_and_sigma():
         calculate_d_sigma_array(obs, np.ones((2, 2)), cal)
 
 
-def test_apply_works_with_saved_calibration_like_objects():
+def test_apply_works_with_every_camera_model_and_nothing_else():
     from types import SimpleNamespace
 
-    cal = SimpleNamespace(camera_constant_px_A=500.0, ellipse=NO_DISTORTION)
-    assert calculate_d_from_offset_array([[0.0, 250.0]], cal)[0] == pytest.approx(2.0)
+    from saedkit.core.calibration.camera import EnteredCalibration
+
+    # R·d = K (camera equation): 500 px·Å at 250 px is 2 Å
+    assert calculate_d_from_offset_array([[0.0, 250.0]], EnteredCalibration(500.0))[0] == pytest.approx(2.0)
+    # a bare namespace is not a calibration any more: the camera model is built at the edge
+    with pytest.raises(InputError, match="camera must be a calibration"):
+        calculate_d_from_offset_array([[0.0, 250.0]], SimpleNamespace(camera_constant_px_A=500.0,
+                                                                       ellipse=NO_DISTORTION))
     with pytest.raises(InputError, match="camera_constant_px_A"):
-        calculate_d_from_offset_array([[0.0, 250.0]], SimpleNamespace(camera_constant_px_A=-1.0))
+        EnteredCalibration(-1.0)

@@ -199,7 +199,10 @@ def test_spot_measurements_match_the_camera_equation(session, si_pattern):
     centre = np.array(truth.centre_xy) + rng.normal(0, 0.05, (n, 2))
     R = np.hypot(*(spot - centre).T)
     assert m.radius_sigma_px == pytest.approx(np.std(R), rel=0.02)
-    assert m.d_sigma_A == pytest.approx(np.std(rng.normal(K_TRUE, 0.4, n) / R), rel=0.02)
+    assert m.d_stat_sigma_A == pytest.approx(np.std(rng.normal(K_TRUE, 0.4, n) / R), rel=0.02)
+    # the systematic part is the default 1 % reproducibility of K, the total adds the parts in quadrature
+    assert m.d_sys_sigma_A == pytest.approx(0.01 * m.d_A, rel=1e-9)
+    assert m.d_sigma_A == pytest.approx(math.hypot(m.d_stat_sigma_A, m.d_sys_sigma_A), rel=1e-12)
     assert m.g_per_nm == pytest.approx(10 / m.d_A)
     no_cal = calculate_spot_measurements(s.spots, s.centre, None)
     assert all(math.isnan(x.d_A) for x in no_cal) and no_cal[0].radius_px == pytest.approx(rows[0].radius_px)

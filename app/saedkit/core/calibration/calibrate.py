@@ -53,13 +53,14 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from functools import lru_cache
 
 import numpy as np
 from scipy import optimize
 
 from saedkit.core._validate import check_points_xy, check_positive, check_xy, finite_or_none
+from saedkit.core.calibration.camera import DEFAULT_REPRODUCIBILITY_PCT, _CameraMixin, check_reproducibility_pct
 from saedkit.core.detection.centre import CentreResult
 from saedkit.core.crystallography.crystal import Phase, format_indices
 from saedkit.core.distortion import NO_DISTORTION, Ellipse
@@ -165,8 +166,11 @@ class RingAssignment:
 
 
 @dataclass(frozen=True)
-class Calibration:
+class Calibration(_CameraMixin):
     """A camera constant fitted on a pattern of a standard, with its uncertainty and checks.
+
+    A :class:`~saedkit.core.calibration.camera.CameraModel`: K with its
+    statistical σ (the fit's) and, separately, the reproducibility term.
 
     Parameters
     ----------
@@ -212,6 +216,12 @@ class Calibration:
         ``"joint"`` (centre, ellipse and K over ring points), ``"radii"`` (K
         from ring radii alone, the fallback), ``"affine"`` or ``"similarity"``
         (spots).
+    reproducibility_pct : float
+        Systematic relative uncertainty of K when it is used on another pattern
+        (specimen height, lens hysteresis), % (see :mod:`saedkit.core.calibration.camera`).
+    internal_standard : bool
+        True when the standard is on the measured pattern itself (its K applies
+        to that pattern only, with a small reproducibility term).
     """
 
     camera_constant_px_A: float
@@ -237,25 +247,48 @@ class Calibration:
     n_points: int = 0
     exact_camera_equation: bool = False
     fit: str = "joint"
+    reproducibility_pct: float = DEFAULT_REPRODUCIBILITY_PCT
+    internal_standard: bool = False
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "reproducibility_pct", check_reproducibility_pct(self.reproducibility_pct))
 
     @property
-    def camera_constant_rel_sigma(self) -> float:
-        """σ_K / K."""
-        return float(self.camera_constant_sigma_px_A / self.camera_constant_px_A)
+    def source(self) -> str:
+        """Provenance for the camera model: ``"rings"`` or ``"spots"``."""
+        return self.method
+
+    def with_reproducibility(self, reproducibility_pct: float) -> Calibration:
+        """The same calibration with another reproducibility term (%)."""
+        return replace(self, reproducibility_pct=reproducibility_pct)
 
     @property
     def camera_length_sigma_mm(self) -> float | None:
-        """Standard uncertainty of the camera length (from σ_K; the pixel size is taken as exact)."""
+        """Total standard uncertainty of the camera length (statistical and reproducibility; pixel size exact)."""
+        if self.camera_length_mm is None:
+            return None
+        return float(self.camera_length_mm * self.camera_constant_total_rel_sigma)
+
+    @property
+    def camera_length_stat_sigma_mm(self) -> float | None:
+        """Statistical part of the camera length's uncertainty (from the fit's σ_K)."""
         if self.camera_length_mm is None:
             return None
         return float(self.camera_length_mm * self.camera_constant_rel_sigma)
 
     @property
+    def camera_length_sys_sigma_mm(self) -> float | None:
+        """Systematic part of the camera length's uncertainty (the reproducibility)."""
+        if self.camera_length_mm is None:
+            return None
+        return float(self.camera_length_mm * self.reproducibility_pct / 100.0)
+
+    @property
     def lambda_L_sigma_mm_A(self) -> float | None:
-        """Standard uncertainty of λL."""
+        """Total standard uncertainty of λL."""
         if self.lambda_L_mm_A is None:
             return None
-        return float(self.lambda_L_mm_A * self.camera_constant_rel_sigma)
+        return float(self.lambda_L_mm_A * self.camera_constant_total_rel_sigma)
 
     @property
     def is_good(self) -> bool:
@@ -269,6 +302,10 @@ class Calibration:
             "camera_constant_px_A": float(self.camera_constant_px_A),
             "camera_constant_sigma_px_A": float(self.camera_constant_sigma_px_A),
             "camera_constant_rel_sigma": float(self.camera_constant_rel_sigma),
+            "reproducibility_pct": float(self.reproducibility_pct),
+            "camera_constant_sys_sigma_px_A": self.camera_constant_sys_sigma_px_A,
+            "camera_constant_total_sigma_px_A": self.camera_constant_total_sigma_px_A,
+            "internal_standard": bool(self.internal_standard),
             "ellipse": {
                 "ellipticity": float(self.ellipse.ellipticity),
                 "major_axis_deg": float(self.ellipse.major_axis_deg),
@@ -282,6 +319,8 @@ class Calibration:
             "pixel_size_um": finite_or_none(self.pixel_size_um),
             "camera_length_mm": finite_or_none(self.camera_length_mm),
             "camera_length_sigma_mm": finite_or_none(self.camera_length_sigma_mm),
+            "camera_length_stat_sigma_mm": finite_or_none(self.camera_length_stat_sigma_mm),
+            "camera_length_sys_sigma_mm": finite_or_none(self.camera_length_sys_sigma_mm),
             "lambda_L_mm_A": finite_or_none(self.lambda_L_mm_A),
             "lambda_L_sigma_mm_A": finite_or_none(self.lambda_L_sigma_mm_A),
             "standard": self.standard,
@@ -1646,20 +1685,6 @@ def _decompose_affine(A: np.ndarray) -> tuple[float, Ellipse, float]:
 # --------------------------------------------------------------------------- applying a calibration
 
 
-def _terms(calibration) -> tuple[float, float, Ellipse, bool, float | None]:
-    K = check_positive("camera_constant_px_A", getattr(calibration, "camera_constant_px_A", None))
-    sK = getattr(calibration, "camera_constant_sigma_px_A", None)
-    sK = 0.0 if sK is None or not math.isfinite(float(sK)) else float(sK)
-    ell = getattr(calibration, "ellipse", None) or NO_DISTORTION
-    exact = bool(getattr(calibration, "exact_camera_equation", False))
-    lam = getattr(calibration, "wavelength_A", None)
-    if exact and (lam is None or not math.isfinite(lam)):
-        kv = getattr(calibration, "voltage_kv", None)
-        lam = calculate_wavelength_A(kv) if kv else None
-        exact = lam is not None
-    return K, sK, ell, exact, lam
-
-
 def calculate_corrected_radius_array(offsets_xy, ellipse: Ellipse = NO_DISTORTION) -> np.ndarray:
     """Ideal (ellipse-corrected) distances ``|D⁻¹v|`` of offsets from the centre, pixels."""
     v = check_points_xy("offsets_xy", offsets_xy)
@@ -1669,34 +1694,35 @@ def calculate_corrected_radius_array(offsets_xy, ellipse: Ellipse = NO_DISTORTIO
 def calculate_d_from_offset_array(offsets_xy, calibration) -> np.ndarray:
     """Spacings (Å) of reflections at ``offsets_xy`` from the centre, with the ellipse corrected.
 
+    A shortcut to :func:`saedkit.core.measure.measure_positions` about the origin.
+
     Parameters
     ----------
     offsets_xy : (N, 2) array
         Observed offsets ``[dx, dy]`` from the pattern centre, pixels.
-    calibration : Calibration, SavedCalibration or any object with
-        ``camera_constant_px_A`` and ``ellipse``.
+    calibration : CameraModel
+        Any calibration (fitted, saved, entered).
 
     Returns
     -------
     (N,) ndarray
         ``d = K / |D⁻¹v|`` (or the exact camera equation when the
-        calibration was fitted with it); ``inf`` at the centre.
+        calibration was fitted with it); NaN at the centre.
 
     Examples
     --------
-    >>> from types import SimpleNamespace
-    >>> cal = SimpleNamespace(camera_constant_px_A=500.0, ellipse=NO_DISTORTION)
-    >>> calculate_d_from_offset_array([[200.0, 0.0]], cal).tolist()
+    >>> from saedkit.core.calibration.camera import EnteredCalibration
+    >>> calculate_d_from_offset_array([[200.0, 0.0]], EnteredCalibration(500.0)).tolist()
     [2.5]
     """
-    K, _, ell, exact, lam = _terms(calibration)
-    R = calculate_corrected_radius_array(offsets_xy, ell)
-    with np.errstate(divide="ignore"):
-        return _spacing_from_inverse(R / K, exact=exact, wavelength_A=lam or 1.0)
+    from saedkit.core.measure import measure_positions
+
+    v = check_points_xy("offsets_xy", offsets_xy)
+    return measure_positions(v, 0.0, (0.0, 0.0), 0.0, calibration).d_A
 
 
 def calculate_d_sigma_array(offsets_xy, offsets_sigma, calibration) -> np.ndarray:
-    """Standard uncertainties (Å) of the spacings of :func:`calculate_d_from_offset_array`.
+    """Statistical standard uncertainties (Å) of the spacings of :func:`calculate_d_from_offset_array`.
 
     Parameters
     ----------
@@ -1706,63 +1732,45 @@ def calculate_d_sigma_array(offsets_xy, offsets_sigma, calibration) -> np.ndarra
         Position uncertainty, pixels: one value per point (the same in x and
         y), or ``[σx, σy]`` per point. Include the centre's uncertainty here
         when it matters.
-    calibration : calibration-like
-        With ``camera_constant_px_A``, ``camera_constant_sigma_px_A`` and ``ellipse``.
+    calibration : CameraModel
 
     Returns
     -------
     (N,) ndarray
-        ``σ_d = d·sqrt((σ_R/R)² + (σ_K/K)²)``, where ``σ_R`` is the position
-        uncertainty projected on the radial direction of the ideal offset.
-
-    Examples
-    --------
-    >>> from types import SimpleNamespace
-    >>> cal = SimpleNamespace(camera_constant_px_A=500.0, camera_constant_sigma_px_A=0.5, ellipse=NO_DISTORTION)
-    >>> calculate_d_sigma_array([[200.0, 0.0]], 0.2, cal).round(5).tolist()
-    [0.00354]
+        ``σ_d = d·sqrt((σ_R/R)² + (σ_K/K)²)`` (small-angle form), ``σ_R`` the
+        position uncertainty projected on the radial direction of the ideal
+        offset. The reproducibility of K is left out: the whole measurement,
+        with it, is :func:`saedkit.core.measure.measure_positions`.
     """
-    K, sK, ell, exact, lam = _terms(calibration)
+    from saedkit.core.measure import measure_positions
+
     v = check_points_xy("offsets_xy", offsets_xy)
-    s = np.asarray(offsets_sigma, dtype=float)
-    if s.ndim == 0:
-        s = np.full((len(v), 2), float(s))
-    elif s.shape == (len(v),):
-        s = np.column_stack([s, s])
-    elif s.shape != (len(v), 2):
-        raise InputError(f"offsets_sigma must be a number, (N,) or (N, 2) with N = {len(v)}, got shape {s.shape}")
-    if np.any(~np.isfinite(s)) or np.any(s < 0):
+    sig = np.asarray(offsets_sigma, dtype=float)
+    if sig.ndim == 0:
+        sig = np.full((len(v), 2), float(sig))
+    elif sig.shape == (len(v),):
+        sig = np.column_stack([sig, sig])
+    elif sig.shape != (len(v), 2):
+        raise InputError(f"offsets_sigma must be a number, (N,) or (N, 2) with N = {len(v)}, got shape {sig.shape}")
+    if np.any(~np.isfinite(sig)) or np.any(sig < 0):
         raise InputError("offsets_sigma must be finite and >= 0")
-    dinv = ell.inverse_matrix
-    ideal = v @ dinv.T
-    R = np.hypot(*ideal.T) if len(v) else np.zeros(0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        u = ideal / R[:, None]
-    # dR/dv = uᵀ D⁻¹ (row vector per point)
-    grad = u @ dinv
-    sR = np.sqrt((grad[:, 0] * s[:, 0]) ** 2 + (grad[:, 1] * s[:, 1]) ** 2) if len(v) else np.zeros(0)
-    d = calculate_d_from_offset_array(v, calibration)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        rel = np.sqrt((sR / R) ** 2 + (sK / K) ** 2)
-    return d * rel
+    return measure_positions(v, sig, (0.0, 0.0), 0.0, calibration).d_stat_sigma_A
 
 
 def calculate_d_from_radius_array(radius_px, calibration) -> np.ndarray:
     """Spacings (Å) of rings or reflections at ideal (ellipse-corrected) radii ``radius_px``.
 
-    ``d = K/R`` (or the exact camera equation when the calibration was fitted with it).
+    ``d = K/R`` (or the exact camera equation when the calibration was fitted with it);
+    see :func:`saedkit.core.measure.measure_radii`.
     """
-    K, _, _, exact, lam = _terms(calibration)
-    R = np.asarray(radius_px, dtype=float)
-    with np.errstate(divide="ignore"):
-        return _spacing_from_inverse(R / K, exact=exact, wavelength_A=lam or 1.0)
+    from saedkit.core.measure import measure_radii
+
+    return measure_radii(radius_px, None, calibration).d_A
 
 
 def calculate_d_sigma_from_radius_array(radius_px, radius_sigma_px, calibration) -> np.ndarray:
-    """Standard uncertainties (Å) of :func:`calculate_d_from_radius_array`: ``σ_d/d = sqrt((σ_R/R)² + (σ_K/K)²)``."""
-    K, sK, _, _, _ = _terms(calibration)
-    R = np.asarray(radius_px, dtype=float)
-    sR = np.broadcast_to(np.asarray(radius_sigma_px, dtype=float), R.shape)
-    d = calculate_d_from_radius_array(R, calibration)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return d * np.sqrt((sR / R) ** 2 + (sK / K) ** 2)
+    """Statistical standard uncertainties (Å) of :func:`calculate_d_from_radius_array`:
+    ``σ_d/d = sqrt((σ_R/R)² + (σ_K/K)²)`` (the reproducibility of K left out)."""
+    from saedkit.core.measure import measure_radii
+
+    return measure_radii(radius_px, radius_sigma_px, calibration).d_stat_sigma_A

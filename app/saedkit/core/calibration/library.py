@@ -59,10 +59,11 @@ import time
 import unicodedata
 from dataclasses import asdict, dataclass, fields, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Sequence
 
 from saedkit.core._atomic import write_text_atomic
 from saedkit.core._jsonsafe import JsonLimitError, loads_bounded
+from saedkit.core.calibration.camera import DEFAULT_REPRODUCIBILITY_PCT, _CameraMixin
 from saedkit.core.distortion import Ellipse
 from saedkit.core.errors import InputError, LibraryError
 
@@ -73,6 +74,7 @@ __all__ = [
     "default_library_path",
     "resolve_calibration",
     "check_calibration_name",
+    "estimate_reproducibility_pct",
     "LIBRARY_FORMAT",
     "LIBRARY_VERSION",
 ]
@@ -178,8 +180,17 @@ def check_calibration_name(name: str, *, where: str = "") -> str:
     return name
 
 
+def _reproducibility(rec: dict, where: str) -> float:
+    value = rec.get("reproducibility_pct", DEFAULT_REPRODUCIBILITY_PCT)
+    if value is None:
+        return DEFAULT_REPRODUCIBILITY_PCT
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value < 50:
+        raise _bad("reproducibility_pct", value, "must be a percentage >= 0 and < 50", where)
+    return float(value)
+
+
 @dataclass(frozen=True)
-class SavedCalibration:
+class SavedCalibration(_CameraMixin):
     """A calibration kept in the library.
 
     Parameters
@@ -216,6 +227,10 @@ class SavedCalibration:
         ``"good"`` or ``"poor"`` as fitted ("" when unknown).
     exact_camera_equation : bool
         K was fitted with ``R = L·tan 2θ``.
+    reproducibility_pct : float
+        Systematic relative uncertainty of K when it is applied to another
+        pattern (specimen height, lens hysteresis), %; records saved before it
+        existed read as the default (see :mod:`saedkit.core.calibration.camera`).
     """
 
     name: str
@@ -237,6 +252,9 @@ class SavedCalibration:
     major_axis_sigma_deg: float = 0.0
     quality: str = ""
     exact_camera_equation: bool = False
+    reproducibility_pct: float = DEFAULT_REPRODUCIBILITY_PCT
+
+    source = "library"  # provenance, for the camera model
 
     def __post_init__(self) -> None:
         # validate (and normalise) through the same path as a record read from disk
@@ -253,11 +271,6 @@ class SavedCalibration:
     def ellipse(self) -> Ellipse:
         """The distortion as an :class:`Ellipse`."""
         return Ellipse(self.ellipticity, self.major_axis_deg)
-
-    @property
-    def camera_constant_rel_sigma(self) -> float:
-        """σ_K / K."""
-        return self.camera_constant_sigma_px_A / self.camera_constant_px_A
 
     @property
     def datetime(self) -> _dt.datetime:
@@ -279,6 +292,24 @@ class SavedCalibration:
         if self.pixel_size_um is None:
             return None
         return self.camera_constant_px_A * self.pixel_size_um * 1e-3
+
+    @property
+    def camera_length_sigma_mm(self) -> float | None:
+        """Total standard uncertainty of the camera length (statistical and reproducibility)."""
+        L = self.camera_length_mm
+        return None if L is None else float(L * self.camera_constant_total_rel_sigma)
+
+    @property
+    def camera_length_stat_sigma_mm(self) -> float | None:
+        """Statistical part of the camera length's uncertainty."""
+        L = self.camera_length_mm
+        return None if L is None else float(L * self.camera_constant_rel_sigma)
+
+    @property
+    def camera_length_sys_sigma_mm(self) -> float | None:
+        """Systematic part (reproducibility) of the camera length's uncertainty."""
+        L = self.camera_length_mm
+        return None if L is None else float(L * self.reproducibility_pct / 100.0)
 
     # -- conversion
 
@@ -336,6 +367,7 @@ class SavedCalibration:
             major_axis_sigma_deg=_num(rec, "major_axis_sigma_deg", where_n, non_negative=True, optional=True) or 0.0,
             quality=quality,
             exact_camera_equation=exact,
+            reproducibility_pct=_reproducibility(rec, where_n),
         )
         obj = object.__new__(cls)
         for f in fields(cls):
@@ -355,6 +387,7 @@ class SavedCalibration:
         pixel_size_um: float | None = None,
         notes: str = "",
         date: str | None = None,
+        reproducibility_pct: float | None = None,
     ) -> SavedCalibration:
         """A library record from a fitted :class:`~saedkit.core.calibration.calibrate.Calibration`.
 
@@ -373,6 +406,8 @@ class SavedCalibration:
             Overrides the calibration's pixel size.
         date : str, optional
             ISO 8601 UTC; now by default.
+        reproducibility_pct : float, optional
+            Overrides the calibration's reproducibility term (%).
 
         Raises
         ------
@@ -403,6 +438,8 @@ class SavedCalibration:
             major_axis_sigma_deg=float(sig_phi) if sig_phi is not None and math.isfinite(sig_phi) else 0.0,
             quality=str(getattr(calibration, "quality", "") or ""),
             exact_camera_equation=bool(getattr(calibration, "exact_camera_equation", False)),
+            reproducibility_pct=float(getattr(calibration, "reproducibility_pct", DEFAULT_REPRODUCIBILITY_PCT)
+                                      if reproducibility_pct is None else reproducibility_pct),
         )
 
 
@@ -801,6 +838,31 @@ def _release(fh) -> None:
     import fcntl
 
     fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
+
+
+def estimate_reproducibility_pct(history: Sequence[CalibrationHistoryEntry], *, min_count: int = 3) -> float | None:
+    """The reproducibility of K (%) from repeated calibrations of one instrument state, or None if too few.
+
+    Parameters
+    ----------
+    history : sequence of CalibrationHistoryEntry
+        From :meth:`CalibrationLibrary.history` (same voltage, camera length, binning).
+    min_count : int
+        Fewest calibrations that give an estimate.
+
+    Notes
+    -----
+    The scatter of K between calibrations holds the fits' own statistical
+    scatter and the reproducibility: ``r² = s²(K)/K̄² − mean(σ_K²/K²)``
+    (``s`` the sample standard deviation), floored at 0 [cp].
+    """
+    if len(history) < max(int(min_count), 2):
+        return None
+    k = [float(h.camera_constant_px_A) for h in history]
+    mean = sum(k) / len(k)
+    var = sum((x - mean) ** 2 for x in k) / (len(k) - 1)
+    stat = sum((h.camera_constant_sigma_px_A / h.camera_constant_px_A) ** 2 for h in history) / len(history)
+    return 100.0 * math.sqrt(max(var / mean**2 - stat, 0.0))
 
 
 def resolve_calibration(name_or_file: str | os.PathLike, *, library: CalibrationLibrary | None = None

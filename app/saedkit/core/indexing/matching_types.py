@@ -79,11 +79,14 @@ class IndexedSpot:
     d_error_pct: float | None  # (measured − predicted)/predicted, %
     position_error_px: float | None
     forbidden: bool = False  # kinematically forbidden, explained by double diffraction
+    d_stat_sigma_A: float = float("nan")  # statistical and systematic parts of d_sigma_A (set by the measurement)
+    d_sys_sigma_A: float = float("nan")
 
     def to_dict(self) -> dict:
         return {
             "x": self.x, "y": self.y, "hkl": None if self.hkl is None else list(self.hkl),
             "d_A": finite_or_none(self.d_A), "d_sigma_A": finite_or_none(self.d_sigma_A),
+            "d_stat_sigma_A": finite_or_none(self.d_stat_sigma_A), "d_sys_sigma_A": finite_or_none(self.d_sys_sigma_A),
             "d_error_pct": None if self.d_error_pct is None else finite_or_none(self.d_error_pct),
             "position_error_px": None if self.position_error_px is None else finite_or_none(self.position_error_px),
             "double_diffraction": self.forbidden,

@@ -1,44 +1,338 @@
-"""Whole analyses of one pattern, as the command line, the batch runner and the demo run them.
+"""The analysis of one pattern as public steps, and the whole analyses built from them.
 
-Each function chains the core steps (mask → centre → spots or rings →
-calibration → match or identification) with the same defaults as the
-desktop program, and returns an :class:`~saedkit.core.workflow.analysis.Analysis`.
+Steps (each usable alone, from a script, the command line, the batch runner
+or the desktop program):
+
+- :func:`prepare_mask` — the image's mask plus saturated pixels and the beam stop;
+- :func:`locate_centre` — the centre from Friedel symmetry (or a known one);
+- :func:`detect_spots` — spots about the centre;
+- :func:`detect_rings` — rings, centre and ellipse of a ring pattern;
+- :func:`calibrate_rings` / :func:`calibrate_spot_standard` — the camera constant on a standard;
+- :func:`search_zone_axes` — rank zone axes, then measure every candidate's spots
+  with the one measurement function (:func:`saedkit.core.measure.measure_positions`);
+- :func:`identify_ring_phases` — rank phases against ring spacings.
+
+:class:`PipelineOptions` holds every default once; :func:`analyse_spot_pattern`
+and :func:`analyse_ring_pattern` chain the steps and return an
+:class:`~saedkit.core.workflow.analysis.Analysis`.
 """
 
 from __future__ import annotations
 
+import dataclasses
+from dataclasses import dataclass
 from typing import Callable, Sequence
 
 import numpy as np
 
-from saedkit.core.workflow.analysis import Analysis
-from saedkit.core.detection.centre import CentreResult
+from saedkit.core.calibration.camera import (
+    INTERNAL_STANDARD_REPRODUCIBILITY_PCT,
+    CameraModel,
+    EnteredCalibration,
+    camera_terms,
+)
 from saedkit.core.crystallography.crystal import Phase
-from saedkit.core.distortion import NO_DISTORTION, Ellipse
+from saedkit.core.detection.centre import CentreResult
 from saedkit.core.errors import InputError
+from saedkit.core.workflow.analysis import Analysis, measure_candidates
 
-__all__ = ["analyse_spot_pattern", "analyse_ring_pattern", "calibration_terms"]
+__all__ = [
+    "PipelineOptions",
+    "DEFAULT_OPTIONS",
+    "DEFAULT_VOLTAGE_KV",
+    "prepare_mask",
+    "locate_centre",
+    "detect_spots",
+    "detect_rings",
+    "calibrate_rings",
+    "subtract_rings",
+    "calibrate_spot_standard",
+    "search_zone_axes",
+    "measure_candidates",
+    "identify_ring_phases",
+    "analyse_spot_pattern",
+    "analyse_ring_pattern",
+    "as_camera",
+]
 
 Progress = Callable[[int, int], None]
 Stop = Callable[[], bool]
 
+#: Voltage assumed when neither the caller nor the image says (kV).
+DEFAULT_VOLTAGE_KV = 200.0
 
-def calibration_terms(calibration=None, *, camera_constant_px_A: float | None = None,
-                      camera_constant_sigma_px_A: float | None = None) -> tuple[float | None, float, Ellipse]:
-    """(K, σ_K, ellipse) from a calibration (fitted or saved) or a typed-in K."""
+
+@dataclass(frozen=True)
+class PipelineOptions:
+    """Every tunable of the pipeline, with its default stated once.
+
+    Parameters
+    ----------
+    voltage_kv : float, optional
+        Accelerating voltage; None: the image's metadata, then 200 kV.
+    pixel_size_um : float, optional
+        Detector pixel size after binning; None: the image's metadata.
+    min_snr : float
+        Smallest spot signal-to-noise ratio kept (5, common practice).
+    max_spots : int
+        Largest number of spots kept.
+    d_tolerance_pct, angle_tolerance_deg : float
+        Zone-axis match tolerances (2.5 % and 2°, common practice: 2–3 % and 1–2°).
+    max_index : int
+        Largest |u|, |v|, |w| of the zone axes considered.
+    top : int
+        Candidates kept (and listed).
+    ring_d_tolerance_pct : float
+        Ring-to-reflection tolerance of phase identification and ring calibration.
+    ring_min_snr : float
+        Smallest ring signal-to-noise ratio in the radial profile.
+    fit_ellipse : bool
+        Fit the elliptical distortion with the rings.
+    exact_camera_equation : bool
+        Calibrate with ``R = L·tan 2θ``.
+    """
+
+    voltage_kv: float | None = None
+    pixel_size_um: float | None = None
+    min_snr: float = 5.0
+    max_spots: int = 1000
+    d_tolerance_pct: float = 2.5
+    angle_tolerance_deg: float = 2.0
+    max_index: int = 10
+    top: int = 5
+    ring_d_tolerance_pct: float = 1.5
+    ring_min_snr: float = 4.0
+    fit_ellipse: bool = True
+    exact_camera_equation: bool = False
+
+    def replace(self, **changes) -> PipelineOptions:
+        """A copy with some options changed (None values leave the default)."""
+        return dataclasses.replace(self, **{k: v for k, v in changes.items() if v is not None})
+
+    def voltage_for(self, image) -> float:
+        """The voltage to use for ``image``."""
+        return float(self.voltage_kv or getattr(image, "voltage_kv", None) or DEFAULT_VOLTAGE_KV)
+
+    def pixel_size_for(self, image) -> float | None:
+        """The pixel size to use for ``image`` (None when unknown)."""
+        return self.pixel_size_um or getattr(image, "pixel_size_um", None)
+
+    def to_dict(self) -> dict:
+        """JSON-ready."""
+        return dataclasses.asdict(self)
+
+
+DEFAULT_OPTIONS = PipelineOptions()
+
+
+def as_camera(calibration=None, *, camera_constant_px_A: float | None = None,
+              camera_constant_sigma_px_A: float | None = None, reproducibility_pct: float | None = None,
+              voltage_kv: float | None = None):
+    """The camera model of the edge: a calibration as given, or a typed-in K made into an EnteredCalibration.
+
+    Raises
+    ------
+    InputError
+        When both a calibration and a camera constant are given, or the
+        calibration is not a camera model.
+    """
     if calibration is not None and camera_constant_px_A is not None:
         raise InputError("give a calibration or a camera constant, not both")
     if calibration is not None:
-        return (float(calibration.camera_constant_px_A), float(calibration.camera_constant_sigma_px_A or 0.0),
-                calibration.ellipse)
+        if not isinstance(calibration, CameraModel):
+            raise InputError(f"calibration must be a fitted, saved or entered calibration, "
+                             f"got {type(calibration).__name__}")
+        if reproducibility_pct is not None:
+            calibration = dataclasses.replace(calibration, reproducibility_pct=float(reproducibility_pct))
+        return calibration
     if camera_constant_px_A is not None:
-        return float(camera_constant_px_A), float(camera_constant_sigma_px_A or 0.0), NO_DISTORTION
-    return None, 0.0, NO_DISTORTION
+        kw = {} if reproducibility_pct is None else {"reproducibility_pct": float(reproducibility_pct)}
+        return EnteredCalibration(float(camera_constant_px_A), float(camera_constant_sigma_px_A or 0.0),
+                                  voltage_kv=voltage_kv, **kw)
+    if camera_constant_sigma_px_A is not None:
+        raise InputError("camera_constant_sigma_px_A needs camera_constant_px_A")
+    return None
 
 
 def _stage(progress: Progress | None, done: int, total: int) -> None:
     if progress is not None:
         progress(done, total)
+
+
+# --------------------------------------------------------------------------- steps
+
+
+def prepare_mask(image, mask: np.ndarray | None = None) -> np.ndarray:
+    """Pixels to leave out: ``mask`` if given, else the image's mask plus saturated pixels and the beam stop."""
+    if mask is not None:
+        return np.asarray(mask, bool)
+    from saedkit.core.detection.masks import find_auto_mask
+
+    return np.asarray(image.mask, bool) | find_auto_mask(image.data, saturation_value=image.saturation_value)
+
+
+def locate_centre(image, mask: np.ndarray, *, centre_xy=None, centre_sigma_px: float = 0.5) -> CentreResult:
+    """The pattern centre from the Friedel symmetry of the spots, or the known ``centre_xy``."""
+    from saedkit.core.detection.centre import find_centre_spots, manual_centre
+
+    if centre_xy is not None:
+        return manual_centre(float(centre_xy[0]), float(centre_xy[1]), sigma_px=centre_sigma_px)
+    return find_centre_spots(image.data, mask=mask)
+
+
+def detect_spots(image, mask: np.ndarray, centre: CentreResult, *, options: PipelineOptions = DEFAULT_OPTIONS,
+                 should_stop: Stop | None = None) -> tuple:
+    """The spots of the pattern about ``centre`` (tuple of Spot)."""
+    from saedkit.core.detection.spots import find_spots
+
+    return tuple(find_spots(image.data, mask=mask, centre_xy=centre.xy, min_snr=options.min_snr,
+                            max_spots=options.max_spots, should_stop=should_stop))
+
+
+def detect_rings(image, mask: np.ndarray, *, options: PipelineOptions = DEFAULT_OPTIONS,
+                 progress: Progress | None = None, should_stop: Stop | None = None):
+    """Rings, centre and ellipse of a ring pattern (RingFit)."""
+    from saedkit.core.detection.rings import find_rings
+
+    return find_rings(image.data, mask=mask, min_snr=options.ring_min_snr, fit_ellipse=options.fit_ellipse,
+                      progress=progress, should_stop=should_stop)
+
+
+def subtract_rings(data: np.ndarray, centre_xy, ellipse, *, mask: np.ndarray | None = None,
+                   bin_px: float = 0.5) -> np.ndarray:
+    """The image with its rotationally symmetric part (rings, diffuse background) taken away.
+
+    The median of the pixels in each thin annulus of ideal (ellipse-corrected)
+    radius about ``centre_xy`` is subtracted and the result clipped at 0. The
+    median is untouched by the few pixels of a spot in an annulus, so spots
+    stay while the rings of an internal standard go.
+
+    Parameters
+    ----------
+    data : 2-D array
+    centre_xy : [x, y]
+    ellipse : Ellipse
+    mask : bool array, optional
+        Pixels left out of the medians.
+    bin_px : float
+        Annulus width, pixels.
+    """
+    a = np.asarray(data, dtype=float)
+    rows, cols = a.shape
+    yy, xx = np.mgrid[0:rows, 0:cols]
+    v = np.stack([xx.ravel() - float(centre_xy[0]), yy.ravel() - float(centre_xy[1])], axis=1)
+    R = np.hypot(*ellipse.correct_array(v).T)
+    b = (R / bin_px).astype(np.int64)
+    vals = a.ravel()
+    use = np.ones(vals.shape, bool) if mask is None else ~np.asarray(mask, bool).ravel()
+    nb = int(b.max()) + 1
+    order = np.lexsort((vals[use], b[use]))
+    sorted_vals = vals[use][order]
+    counts = np.bincount(b[use], minlength=nb)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    med = np.zeros(nb)
+    has = counts > 0
+    lo = starts[has] + (counts[has] - 1) // 2
+    hi = starts[has] + counts[has] // 2
+    med[has] = 0.5 * (sorted_vals[lo] + sorted_vals[hi])
+    return np.clip(a - med[b].reshape(a.shape), 0.0, None)
+
+
+def calibrate_rings(image, standard: Phase, mask: np.ndarray, *, options: PipelineOptions = DEFAULT_OPTIONS,
+                    reproducibility_pct: float | None = None, internal_standard: bool = False,
+                    progress: Progress | None = None, should_stop: Stop | None = None):
+    """The camera constant fitted on the rings of a standard (Calibration).
+
+    With ``internal_standard`` the standard shares the pattern with the
+    specimen: the calibration is marked so and its reproducibility term is
+    :data:`~saedkit.core.calibration.camera.INTERNAL_STANDARD_REPRODUCIBILITY_PCT`
+    unless ``reproducibility_pct`` says otherwise.
+    """
+    from saedkit.core.calibration.calibrate import calibrate_from_rings
+
+    cal = calibrate_from_rings(image, standard, voltage_kv=options.voltage_for(image), mask=mask,
+                               pixel_size_um=options.pixel_size_for(image),
+                               d_tolerance_pct=options.ring_d_tolerance_pct, min_snr=options.ring_min_snr,
+                               fit_ellipse=options.fit_ellipse, exact_camera_equation=options.exact_camera_equation,
+                               progress=progress, should_stop=should_stop)
+    if internal_standard:
+        rep = INTERNAL_STANDARD_REPRODUCIBILITY_PCT if reproducibility_pct is None else reproducibility_pct
+        return dataclasses.replace(cal, internal_standard=True, reproducibility_pct=float(rep))
+    if reproducibility_pct is not None:
+        return dataclasses.replace(cal, reproducibility_pct=float(reproducibility_pct))
+    return cal
+
+
+def search_zone_axes(spots: Sequence, centre: CentreResult, phases: Sequence[Phase], *, calibration=None,
+                     image_shape=None, mask: np.ndarray | None = None, options: PipelineOptions = DEFAULT_OPTIONS,
+                     voltage_kv: float = DEFAULT_VOLTAGE_KV, should_stop: Stop | None = None):
+    """Rank the zone axes that explain the spots; the lattice-refined centre; candidates measured.
+
+    Returns
+    -------
+    (MatchResult, CentreResult)
+        The match (candidates' spots measured with :func:`measure_candidates`)
+        and the centre they were measured about (refined with the lattice
+        when its uncertainty is known, else ``centre``).
+    """
+    from saedkit.core.detection.spots import spots_xy_array
+    from saedkit.core.indexing.matching import match_zone_axes
+
+    K = K_sig = None
+    ellipse = None
+    if calibration is not None:
+        t = camera_terms(calibration)
+        K, K_sig, ellipse = t.camera_constant_px_A, t.stat_sigma_px_A, t.ellipse
+    sig = np.array([np.hypot(s.sigma_x, s.sigma_y) / np.sqrt(2) for s in spots])
+    kw = {} if ellipse is None else {"ellipse": ellipse}
+    match = match_zone_axes(
+        spots_xy_array(list(spots)), centre.xy, list(phases), camera_constant_px_A=K,
+        camera_constant_sigma_px_A=K_sig, voltage_kv=voltage_kv, d_tolerance_pct=options.d_tolerance_pct,
+        angle_tolerance_deg=options.angle_tolerance_deg, max_index=options.max_index, top=options.top,
+        spots_sigma_px=sig, image_shape=image_shape, mask=mask, should_stop=should_stop,
+        spots_intensity=np.array([s.intensity for s in spots], float), **kw)
+    lat = match.lattice
+    if lat is not None and np.all(np.isfinite(lat.centre_sigma_px)):
+        centre = CentreResult(lat.centre_xy[0], lat.centre_xy[1], lat.centre_sigma_px[0], lat.centre_sigma_px[1],
+                              "spot-lattice", int(np.sum(lat.inliers)))
+    return measure_candidates(match, spots, centre, calibration), centre
+
+
+def identify_ring_phases(ring_fit, phases: Sequence[Phase], calibration, *,
+                         options: PipelineOptions = DEFAULT_OPTIONS):
+    """Rank phases (and two-phase mixtures) against the rings' spacings; None without rings or phases."""
+    from saedkit.core.indexing.identify import identify_phases
+    from saedkit.core.measure import measure_radii
+
+    if not phases or calibration is None or not ring_fit.rings:
+        return None
+    m = measure_radii([r.radius_px for r in ring_fit.rings], [r.radius_sigma_px for r in ring_fit.rings],
+                      calibration)
+    return identify_phases([float(d) for d in m.d_A], list(phases),
+                           intensities=[max(r.height, 0.0) for r in ring_fit.rings],
+                           d_tolerance_pct=options.ring_d_tolerance_pct)
+
+
+# --------------------------------------------------------------------------- whole analyses
+
+
+def _options(options: PipelineOptions | None, **overrides) -> PipelineOptions:
+    return (options or DEFAULT_OPTIONS).replace(**overrides)
+
+
+def _parameters(options: PipelineOptions, image, camera, phases, **extra) -> dict:
+    params = options.to_dict()
+    params["voltage_kv"] = options.voltage_for(image)
+    params["pixel_size_um"] = options.pixel_size_for(image)
+    params["phases"] = [p.name for p in phases]
+    t = None if camera is None else camera_terms(camera)
+    params["camera_constant_px_A"] = None if t is None else t.camera_constant_px_A
+    params["camera_constant_sigma_px_A"] = None if t is None else t.stat_sigma_px_A
+    params["reproducibility_pct"] = None if t is None else t.reproducibility_pct
+    params["ellipse"] = None if t is None else t.ellipse.to_dict()
+    params["calibration"] = None if camera is None else getattr(camera, "name", None)
+    params.update(extra)
+    return params
 
 
 def analyse_spot_pattern(
@@ -48,14 +342,17 @@ def analyse_spot_pattern(
     calibration=None,
     camera_constant_px_A: float | None = None,
     camera_constant_sigma_px_A: float | None = None,
+    reproducibility_pct: float | None = None,
+    internal_standard: Phase | None = None,
+    options: PipelineOptions | None = None,
     voltage_kv: float | None = None,
     mask: np.ndarray | None = None,
     centre_xy=None,
-    min_snr: float = 5.0,
-    d_tolerance_pct: float = 2.5,
-    angle_tolerance_deg: float = 2.0,
-    max_index: int = 10,
-    top: int = 10,
+    min_snr: float | None = None,
+    d_tolerance_pct: float | None = None,
+    angle_tolerance_deg: float | None = None,
+    max_index: int | None = None,
+    top: int | None = None,
     progress: Progress | None = None,
     should_stop: Stop | None = None,
 ) -> Analysis:
@@ -66,60 +363,62 @@ def analyse_spot_pattern(
     image : PatternImage
     phases : sequence of Phase
         Candidate phases; without any the analysis stops after the spots.
-    calibration : Calibration or SavedCalibration, optional
-        Supplies K, σ_K and the ellipse correction.
+    calibration : CameraModel, optional
+        A fitted, saved or entered calibration: K, its uncertainty parts and the ellipse.
     camera_constant_px_A, camera_constant_sigma_px_A : float, optional
-        A typed-in K instead of a calibration.
-    voltage_kv : float, optional
-        Defaults to the image's metadata, then 200 kV.
+        A typed-in K instead (made into an
+        :class:`~saedkit.core.calibration.camera.EnteredCalibration`).
+    reproducibility_pct : float, optional
+        Overrides the calibration's reproducibility term (%).
+    internal_standard : Phase, optional
+        A ring standard on the same pattern (e.g. Au evaporated on the grid):
+        the pattern is calibrated on its rings first and the spots are
+        measured with that K (small reproducibility term).
+    options : PipelineOptions, optional
+        The defaults; the single keyword options below override them.
+    voltage_kv, min_snr, d_tolerance_pct, angle_tolerance_deg, max_index, top : optional
+        Shortcuts for the fields of :class:`PipelineOptions`.
     mask : bool array, optional
-        Pixels to exclude; default: the image's mask plus saturated pixels and the beam stop.
+        Pixels to exclude; default: :func:`prepare_mask`.
     centre_xy : [x, y], optional
         A known centre (skips the Friedel search).
     """
-    from saedkit.core.detection.centre import find_centre_spots, manual_centre
-    from saedkit.core.detection.masks import find_auto_mask
-    from saedkit.core.indexing.matching import match_zone_axes
-    from saedkit.core.detection.spots import find_spots, spots_xy_array
-
-    K, K_sig, ellipse = calibration_terms(calibration, camera_constant_px_A=camera_constant_px_A,
-                                          camera_constant_sigma_px_A=camera_constant_sigma_px_A)
-    kv = float(voltage_kv or getattr(image, "voltage_kv", None) or 200.0)
-    data = image.data
-    total = 4 if phases else 3
-    if mask is None:
-        mask = np.asarray(image.mask, bool) | find_auto_mask(data, saturation_value=image.saturation_value)
-    _stage(progress, 1, total)
-    if centre_xy is not None:
-        centre = manual_centre(float(centre_xy[0]), float(centre_xy[1]), sigma_px=0.5)
+    opts = _options(options, voltage_kv=voltage_kv, min_snr=min_snr, d_tolerance_pct=d_tolerance_pct,
+                    angle_tolerance_deg=angle_tolerance_deg, max_index=max_index, top=top)
+    kv = opts.voltage_for(image)
+    mask = prepare_mask(image, mask)
+    if internal_standard is not None:
+        if calibration is not None or camera_constant_px_A is not None:
+            raise InputError("an internal standard calibrates the pattern itself: give no calibration or "
+                             "camera constant with it")
+        camera = calibrate_rings(image, internal_standard, mask, options=opts,
+                                 reproducibility_pct=reproducibility_pct, internal_standard=True,
+                                 should_stop=should_stop)
     else:
-        centre = find_centre_spots(data, mask=mask)
+        camera = as_camera(calibration, camera_constant_px_A=camera_constant_px_A,
+                           camera_constant_sigma_px_A=camera_constant_sigma_px_A,
+                           reproducibility_pct=reproducibility_pct, voltage_kv=kv)
+    total = 4 if phases else 3
+    _stage(progress, 1, total)
+    spot_image = image
+    if internal_standard is not None and camera.centre is not None:
+        # the standard's rings would read as spots: take them away; their fit gives the centre
+        c = camera.centre
+        spot_image = dataclasses.replace(image, data=subtract_rings(image.data, c.xy, camera.ellipse, mask=mask))
+        centre = c if centre_xy is None else locate_centre(image, mask, centre_xy=centre_xy)
+    else:
+        centre = locate_centre(image, mask, centre_xy=centre_xy)
     _stage(progress, 2, total)
-    spots = find_spots(data, mask=mask, centre_xy=centre.xy, min_snr=min_snr, should_stop=should_stop)
+    spots = detect_spots(spot_image, mask, centre, options=opts, should_stop=should_stop)
     _stage(progress, 3, total)
     match = None
     if phases and len(spots) >= 3:
-        sig = np.array([np.hypot(s.sigma_x, s.sigma_y) / np.sqrt(2) for s in spots])
-        match = match_zone_axes(
-            spots_xy_array(spots), centre.xy, list(phases), camera_constant_px_A=K,
-            camera_constant_sigma_px_A=K_sig, ellipse=ellipse, voltage_kv=kv, d_tolerance_pct=d_tolerance_pct,
-            angle_tolerance_deg=angle_tolerance_deg, max_index=max_index, top=top, spots_sigma_px=sig,
-            image_shape=data.shape, mask=mask, should_stop=should_stop,
-            spots_intensity=np.array([s.intensity for s in spots], float),
-        )
-        lat = match.lattice
-        if lat is not None and np.all(np.isfinite(lat.centre_sigma_px)):
-            centre = CentreResult(lat.centre_xy[0], lat.centre_xy[1], lat.centre_sigma_px[0], lat.centre_sigma_px[1],
-                                  "spot-lattice", int(np.sum(lat.inliers)))
+        match, centre = search_zone_axes(spots, centre, phases, calibration=camera, image_shape=image.data.shape,
+                                         mask=mask, options=opts, voltage_kv=kv, should_stop=should_stop)
         _stage(progress, 4, total)
-    params = {
-        "voltage_kv": kv, "min_snr": min_snr, "d_tolerance_pct": d_tolerance_pct,
-        "angle_tolerance_deg": angle_tolerance_deg, "max_index": max_index, "top": top,
-        "phases": [p.name for p in phases], "camera_constant_px_A": K, "camera_constant_sigma_px_A": K_sig,
-        "ellipse": ellipse.to_dict(), "calibration": getattr(calibration, "name", None),
-    }
-    return Analysis(image=image, centre=centre, spots=tuple(spots), calibration=calibration, match=match,
-                    parameters=params)
+    params = _parameters(opts, image, camera, phases,
+                         internal_standard=None if internal_standard is None else internal_standard.name)
+    return Analysis(image=image, centre=centre, spots=spots, calibration=camera, match=match, parameters=params)
 
 
 def analyse_ring_pattern(
@@ -128,11 +427,14 @@ def analyse_ring_pattern(
     standard: Phase | None = None,
     calibration=None,
     camera_constant_px_A: float | None = None,
+    camera_constant_sigma_px_A: float | None = None,
+    reproducibility_pct: float | None = None,
+    phases: Sequence[Phase] = (),
+    options: PipelineOptions | None = None,
     voltage_kv: float | None = None,
     pixel_size_um: float | None = None,
-    phases: Sequence[Phase] = (),
     mask: np.ndarray | None = None,
-    d_tolerance_pct: float = 1.5,
+    d_tolerance_pct: float | None = None,
     progress: Progress | None = None,
     should_stop: Stop | None = None,
 ) -> Analysis:
@@ -142,33 +444,23 @@ def analyse_ring_pattern(
     calibration film); otherwise the rings are measured, converted to d
     with the given calibration or K, and, with ``phases``, the phases are ranked.
     """
-    from saedkit.core.calibration.calibrate import calibrate_from_rings
-    from saedkit.core.indexing.identify import identify_phases
-    from saedkit.core.detection.masks import find_auto_mask
-    from saedkit.core.detection.rings import find_rings
-
-    kv = float(voltage_kv or getattr(image, "voltage_kv", None) or 200.0)
-    px = pixel_size_um or getattr(image, "pixel_size_um", None)
-    data = image.data
-    if mask is None:
-        mask = np.asarray(image.mask, bool) | find_auto_mask(data, saturation_value=image.saturation_value)
-    params = {"voltage_kv": kv, "pixel_size_um": px, "d_tolerance_pct": d_tolerance_pct,
-              "standard": None if standard is None else standard.name, "phases": [p.name for p in phases]}
+    opts = _options(options, voltage_kv=voltage_kv, pixel_size_um=pixel_size_um,
+                    ring_d_tolerance_pct=d_tolerance_pct)
+    mask = prepare_mask(image, mask)
     if standard is not None:
         if calibration is not None or camera_constant_px_A is not None:
             raise InputError("a standard is calibrated from scratch: give no calibration or camera constant with it")
-        cal = calibrate_from_rings(image, standard, voltage_kv=kv, mask=mask, pixel_size_um=px,
-                                   progress=progress, should_stop=should_stop)
+        cal = calibrate_rings(image, standard, mask, options=opts, reproducibility_pct=reproducibility_pct,
+                              progress=progress, should_stop=should_stop)
+        params = _parameters(opts, image, cal, phases, standard=standard.name)
         return Analysis(image=image, centre=cal.centre, calibration=cal, parameters=params)
-    ring_fit = find_rings(data, mask=mask, progress=progress, should_stop=should_stop)
-    K, K_sig, _ = calibration_terms(calibration, camera_constant_px_A=camera_constant_px_A)
-    phase_id = None
-    if phases and K is not None and ring_fit.rings:
-        d = [K / r.radius_px for r in ring_fit.rings]
-        phase_id = identify_phases(d, list(phases), intensities=[max(r.height, 0.0) for r in ring_fit.rings],
-                                   d_tolerance_pct=d_tolerance_pct)
-    params["camera_constant_px_A"] = K
-    return Analysis(image=image, centre=ring_fit.centre, ring_fit=ring_fit, calibration=calibration,
+    camera = as_camera(calibration, camera_constant_px_A=camera_constant_px_A,
+                       camera_constant_sigma_px_A=camera_constant_sigma_px_A,
+                       reproducibility_pct=reproducibility_pct, voltage_kv=opts.voltage_for(image))
+    ring_fit = detect_rings(image, mask, options=opts, progress=progress, should_stop=should_stop)
+    phase_id = identify_ring_phases(ring_fit, phases, camera, options=opts)
+    params = _parameters(opts, image, camera, phases, standard=None)
+    return Analysis(image=image, centre=ring_fit.centre, ring_fit=ring_fit, calibration=camera,
                     phase_id=phase_id, parameters=params)
 
 
@@ -199,24 +491,22 @@ def calibrate_spot_standard(
         given family) explains the pattern.
     """
     from saedkit.core.calibration.calibrate import calibrate_from_spots
-    from saedkit.core.detection.centre import find_centre_spots
-    from saedkit.core.errors import FitError
-    from saedkit.core.detection.masks import find_auto_mask
-    from saedkit.core.indexing.matching import match_zone_axes
-    from saedkit.core.detection.spots import find_spots, spots_xy_array
     from saedkit.core.crystallography.structure_factors import canonical_indices
+    from saedkit.core.detection.spots import spots_xy_array
+    from saedkit.core.errors import FitError
+    from saedkit.core.indexing.matching import match_zone_axes
 
-    kv = float(voltage_kv or getattr(image, "voltage_kv", None) or 200.0)
-    px = pixel_size_um or getattr(image, "pixel_size_um", None)
+    opts = DEFAULT_OPTIONS.replace(voltage_kv=voltage_kv, pixel_size_um=pixel_size_um, min_snr=min_snr)
+    kv = opts.voltage_for(image)
+    px = opts.pixel_size_for(image)
     data = image.data
-    if mask is None:
-        mask = np.asarray(image.mask, bool) | find_auto_mask(data, saturation_value=image.saturation_value)
-    centre = find_centre_spots(data, mask=mask)
-    spots = find_spots(data, mask=mask, centre_xy=centre.xy, min_snr=min_snr, should_stop=should_stop)
+    mask = prepare_mask(image, mask)
+    centre = locate_centre(image, mask)
+    spots = detect_spots(image, mask, centre, options=opts, should_stop=should_stop)
     if len(spots) < 3:
         raise FitError(f"{getattr(image, 'source_path', 'the image')}: only {len(spots)} spots found; "
                        "a single-crystal standard needs at least 3")
-    xy = spots_xy_array(spots)
+    xy = spots_xy_array(list(spots))
     match = match_zone_axes(xy, centre.xy, [standard], voltage_kv=kv, image_shape=data.shape, mask=mask,
                             top=20, should_stop=should_stop)
     cands = list(match.candidates)

@@ -30,7 +30,7 @@ RECORD_TYPES: dict[str, tuple[str, str]] = {
     "RingAssignment": ("saedkit.core.calibration.calibrate", "RingAssignment"),
     "RingIndexing": ("saedkit.core.calibration.calibrate", "RingIndexing"),
     "SavedCalibration": ("saedkit.core.calibration.library", "SavedCalibration"),
-    "EnteredCalibration": ("saedkit.core.workflow.session", "EnteredCalibration"),
+    "EnteredCalibration": ("saedkit.core.calibration.camera", "EnteredCalibration"),
     "Lattice2D": ("saedkit.core.indexing.matching_types", "Lattice2D"),
     "IndexedSpot": ("saedkit.core.indexing.matching_types", "IndexedSpot"),
     "PredictedSpot": ("saedkit.core.indexing.matching_types", "PredictedSpot"),

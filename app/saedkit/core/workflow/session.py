@@ -42,13 +42,15 @@ import numpy as np
 from saedkit import __version__
 from saedkit.core._atomic import write_text_atomic
 from saedkit.core._jsonsafe import JsonLimitError, loads_bounded
-from saedkit.core._validate import check_finite, check_positive, check_xy
+from saedkit.core._validate import check_positive, check_xy
 from saedkit.core.workflow.analysis import Analysis
 from saedkit.core.detection.centre import CentreResult
 from saedkit.core.distortion import NO_DISTORTION, Ellipse
 from saedkit.core.errors import ImageReadError, InputError, SaedkitError
 from saedkit.core.uncertainty import calculate_d_sigma, calculate_radius_sigmas
 from saedkit.core.workflow.records import find_record_type, record_name
+from saedkit.core.calibration.camera import EnteredCalibration
+from saedkit.core.workflow.pipeline import DEFAULT_OPTIONS, DEFAULT_VOLTAGE_KV
 
 __all__ = [
     "Session",
@@ -119,13 +121,14 @@ class SessionSettings:
         Calibration standard (library name or CIF path).
     """
 
-    voltage_kv: float = 200.0
+    # the analysis defaults are the pipeline's, stated once in PipelineOptions
+    voltage_kv: float = DEFAULT_VOLTAGE_KV
     pixel_size_um: float | None = None
-    d_tolerance_pct: float = 2.5
-    angle_tolerance_deg: float = 2.0
-    max_index: int = 10
-    top: int = 10
-    min_snr: float = 5.0
+    d_tolerance_pct: float = DEFAULT_OPTIONS.d_tolerance_pct
+    angle_tolerance_deg: float = DEFAULT_OPTIONS.angle_tolerance_deg
+    max_index: int = DEFAULT_OPTIONS.max_index
+    top: int = DEFAULT_OPTIONS.top
+    min_snr: float = DEFAULT_OPTIONS.min_snr
     snap_radius_px: float = 10.0
     standard: str = "Au"
 
@@ -160,52 +163,6 @@ class SessionSettings:
         """Settings from a record; unknown keys are ignored, missing ones take the defaults."""
         names = {f.name for f in dataclasses.fields(cls)}
         return cls(**{k: v for k, v in dict(record).items() if k in names})
-
-
-@dataclass(frozen=True)
-class EnteredCalibration:
-    """A camera constant typed in by hand (no fit behind it).
-
-    Parameters
-    ----------
-    camera_constant_px_A : float
-        K in pixel·Å (R_px = K / d_A).
-    camera_constant_sigma_px_A : float
-        Its standard uncertainty (0 when unknown).
-    ellipse : Ellipse
-        Distortion to correct for (none by default).
-    name : str
-        Where the value came from, for the record.
-    """
-
-    camera_constant_px_A: float
-    camera_constant_sigma_px_A: float = 0.0
-    ellipse: Ellipse = NO_DISTORTION
-    name: str = "entered by hand"
-
-    def __post_init__(self) -> None:
-        object.__setattr__(self, "camera_constant_px_A",
-                           check_positive("camera_constant_px_A", self.camera_constant_px_A))
-        sigma = check_finite("camera_constant_sigma_px_A", self.camera_constant_sigma_px_A)
-        if sigma < 0:
-            raise InputError(f"camera_constant_sigma_px_A must be >= 0, got {sigma!r}")
-        object.__setattr__(self, "camera_constant_sigma_px_A", sigma)
-
-    @property
-    def camera_constant_rel_sigma(self) -> float:
-        """Relative standard uncertainty of K."""
-        return self.camera_constant_sigma_px_A / self.camera_constant_px_A
-
-    def to_dict(self) -> dict:
-        """JSON-ready record."""
-        return {
-            "source": "entered",
-            "name": self.name,
-            "camera_constant_px_A": self.camera_constant_px_A,
-            "camera_constant_sigma_px_A": self.camera_constant_sigma_px_A,
-            "camera_constant_rel_sigma": self.camera_constant_rel_sigma,
-            "ellipse": self.ellipse.to_dict(),
-        }
 
 
 @dataclass(frozen=True, eq=False)
@@ -379,6 +336,9 @@ class SpotMeasurement:
     intensity_sigma: float
     snr: float
     origin: str
+    d_stat_sigma_A: float = math.nan  # the statistical and systematic parts of d_sigma_A
+    d_sys_sigma_A: float = math.nan
+    g_sigma_per_nm: float = math.nan
 
     def to_dict(self) -> dict:
         """JSON-ready record."""
@@ -388,6 +348,8 @@ class SpotMeasurement:
             "index": self.index, "x": self.x, "y": self.y, "sigma_x_px": f(self.sigma_x),
             "sigma_y_px": f(self.sigma_y), "radius_px": f(self.radius_px),
             "radius_sigma_px": f(self.radius_sigma_px), "d_A": f(self.d_A), "d_sigma_A": f(self.d_sigma_A),
+            "d_stat_sigma_A": f(self.d_stat_sigma_A), "d_sys_sigma_A": f(self.d_sys_sigma_A),
+            "g_sigma_per_nm": f(self.g_sigma_per_nm),
             "g_per_nm": f(self.g_per_nm), "angle_deg": f(self.angle_deg),
             "hkl": None if self.hkl is None else list(self.hkl), "intensity": f(self.intensity),
             "intensity_sigma": f(self.intensity_sigma), "snr": f(self.snr), "origin": self.origin,
@@ -465,16 +427,18 @@ class PointReading:
 
 
 def _camera_terms(calibration) -> tuple[float, float, Ellipse]:
-    """(K, σK, ellipse) of any calibration-like object; K is NaN without one."""
+    """(K, total σK, ellipse) of a camera model; K is NaN without one.
+
+    The σ is the total (statistical and reproducibility in quadrature), what
+    the ruler and the panels quote; the spot table uses the one measurement
+    (:func:`saedkit.core.measure.measure_positions`), which keeps the parts apart.
+    """
     if calibration is None:
         return math.nan, math.nan, NO_DISTORTION
-    k = float(calibration.camera_constant_px_A)
-    sigma = getattr(calibration, "camera_constant_sigma_px_A", None)
-    if sigma is None:
-        rel = getattr(calibration, "camera_constant_rel_sigma", None)
-        sigma = k * float(rel) if rel is not None else 0.0
-    ellipse = getattr(calibration, "ellipse", None) or NO_DISTORTION
-    return k, float(sigma), ellipse
+    from saedkit.core.calibration.camera import camera_terms
+
+    t = camera_terms(calibration)
+    return t.camera_constant_px_A, t.total_sigma_px_A, t.ellipse
 
 
 def _cov(sx: float, sy: float) -> np.ndarray:
@@ -554,33 +518,30 @@ def calculate_spot_measurements(spots: Sequence, centre: CentreResult | None, ca
 
     Notes
     -----
-    Ideal offset ``v = D⁻¹(p − c)``, ``R = |v|``, ``d = K / R`` (camera
-    equation ``R·d = λL``). The radius uncertainty combines the spot's and
-    the centre's position uncertainties projected on the radial direction;
-    ``σ_d / d = √((σ_K/K)² + (σ_R/R)²)`` (first-order propagation, common
-    practice).
+    The numbers come from :func:`saedkit.core.measure.measure_positions`, the
+    one measurement of saedkit (the record, the tables and the matcher's
+    candidates use it too): ideal offset ``v = D⁻¹(p − c)``, ``R = |v|``,
+    ``d`` from the camera equation, ``d_sigma_A`` the total of the
+    statistical (positions, centre, σ_K) and systematic (reproducibility of K) parts.
     """
-    k, sk, ellipse = _camera_terms(calibration)
-    dinv = ellipse.inverse_matrix
+    from saedkit.core.measure import measure_positions
+
     xy = np.array([[s.x, s.y] for s in spots], dtype=float).reshape(-1, 2)
+    sig = np.array([[s.sigma_x, s.sigma_y] for s in spots], dtype=float).reshape(-1, 2)
     c_xy = None if centre is None else (centre.x, centre.y)
+    m = measure_positions(xy, sig, c_xy, None if centre is None else (centre.sigma_x, centre.sigma_y), calibration)
     hkls = find_spot_hkl(xy, candidate, centre_xy=c_xy) if candidate is not None else [None] * len(xy)
     origins = list(origins) if origins is not None else ["auto"] * len(xy)
     out = []
     for i, s in enumerate(spots):
-        if centre is not None:
-            cov = _cov(s.sigma_x, s.sigma_y) + _cov(centre.sigma_x, centre.sigma_y)
-            v, r, sr, _ = calculate_radius_sigmas(np.array([s.x - centre.x, s.y - centre.y]), cov, dinv)
-            angle = math.degrees(math.atan2(s.y - centre.y, s.x - centre.x))
-        else:
-            r = sr = angle = math.nan
-        d, sd = calculate_d_sigma(r, sr, k, sk) if centre is not None else (math.nan, math.nan)
         out.append(SpotMeasurement(
             index=i, x=float(s.x), y=float(s.y), sigma_x=float(s.sigma_x), sigma_y=float(s.sigma_y),
-            radius_px=r, radius_sigma_px=sr, d_A=d, d_sigma_A=sd,
-            g_per_nm=10.0 / d if math.isfinite(d) and d > 0 else math.nan, angle_deg=angle,
+            radius_px=float(m.radius_px[i]), radius_sigma_px=float(m.radius_sigma_px[i]), d_A=float(m.d_A[i]),
+            d_sigma_A=float(m.d_sigma_A[i]), g_per_nm=float(m.g_per_nm[i]), angle_deg=float(m.angle_deg[i]),
             hkl=hkls[i], intensity=float(s.intensity), intensity_sigma=float(s.intensity_sigma),
             snr=float(s.snr), origin=origins[i] if i < len(origins) else "auto",
+            d_stat_sigma_A=float(m.d_stat_sigma_A[i]), d_sys_sigma_A=float(m.d_sys_sigma_A[i]),
+            g_sigma_per_nm=float(m.g_sigma_per_nm[i]),
         ))
     return tuple(out)
 
@@ -833,9 +794,18 @@ class Session:
         return math.nan, math.nan, NO_DISTORTION, "none"
 
     def measurements(self) -> tuple[SpotMeasurement, ...]:
-        """The spots measured with the current centre, camera constant and candidate."""
-        k, sk, ell, source = self.camera_constant
-        cal = None if source == "none" else EnteredCalibration(k, sk if math.isfinite(sk) else 0.0, ell)
+        """The spots measured with the current centre, camera model and candidate.
+
+        The camera model is the session's calibration (with its reproducibility
+        term and camera-equation form) or, without one, the chosen candidate's
+        refined K — the same as :attr:`Analysis.camera` of :meth:`to_analysis`.
+        """
+        from saedkit.core.workflow.analysis import candidate_camera
+
+        cand = self.candidate
+        cal = self._state.calibration
+        if cal is None and cand is not None and math.isfinite(cand.camera_constant_px_A):
+            cal = candidate_camera(cand)
         return calculate_spot_measurements(self._state.spots, self._state.centre, cal,
                                            origins=self._state.spot_origins, candidate=self.candidate)
 
