@@ -92,6 +92,7 @@ def run(args):
         },
         "residual_rms_px": finite_or_none(fit.residual_rms_px),
         "rings": rings,
+        "rejected_rings": [x.to_dict() for x in fit.rejected],
         "calibration": calibration_source_record(resolved),
     }
     if resolved is not None:
@@ -117,6 +118,8 @@ def run(args):
         if d is not None:
             line += f" {d[i]:9.4f} {sd[i]:8.4f}"
         lines.append(line)
+    for x in fit.rejected:
+        lines.append(f"  not a ring: R = {x.peak.radius_px:.1f} px, {x.reason}")
     if resolved is None:
         lines.append("(no calibration: give --calibration NAME or --camera-constant K for d-spacings)")
     return rec, "\n".join(lines)
