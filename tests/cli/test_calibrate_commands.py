@@ -190,3 +190,12 @@ def test_rings_lists_a_short_arc_as_rejected(tmp_path, capsys):
     assert all(abs(x["radius_px"] - 335.0) > 3.0 for x in rec["rings"])
     near = [x for x in rec["rejected_rings"] if abs(x["radius_px"] - 335.0) < 3.0]
     assert len(near) == 1 and "too little arc" in near[0]["reason"]
+
+
+def test_calibrate_with_expected_camera_constant(film, capsys):
+    path, truth = film
+    rec = _json(capsys, ["calibrate", str(path), "--standard", "Au", "--kv", "200", "--expect-k", "260", "--json"])
+    assert rec["camera_constant_px_A"] == pytest.approx(K_TRUE, rel=1e-3)
+    # a wrong expectation (K = 100 px·Å) forces a wrong assignment, which the checks call poor
+    rec = _json(capsys, ["calibrate", str(path), "--standard", "Au", "--kv", "200", "--expect-k", "100", "--json"])
+    assert 90.0 <= rec["camera_constant_px_A"] <= 110.0 and rec["quality"] == "poor"

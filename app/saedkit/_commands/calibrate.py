@@ -58,6 +58,10 @@ def register(sub) -> None:
     p.add_argument("--no-ellipse", action="store_true", help="fit circles (no elliptical distortion)")
     p.add_argument("--exact", action="store_true",
                    help="use the exact camera equation R = L·tan 2θ instead of R = λL/d")
+    p.add_argument("--expect-k", type=positive_float, metavar="K",
+                   help="roughly the camera constant to expect (px·Å, e.g. from the nominal camera length): "
+                   "rings are assigned only with K within ±10 %% of it — needed when a second phase of the "
+                   "standard's structure (Cu with Au) gives rings as strong as the standard's")
     p.add_argument("--spots", action="store_true",
                    help="the image is a single-crystal spot pattern of the standard (e.g. Si), not a ring pattern")
     p.add_argument("--zone", type=int, nargs=3, metavar=("U", "V", "W"),
@@ -104,7 +108,8 @@ def run(args):
     else:
         cal = calibrate_from_rings(image, phase, voltage_kv=kv, mask=mask, pixel_size_um=px,
                                    d_tolerance_pct=args.d_tol, min_snr=args.min_snr, fit_ellipse=not args.no_ellipse,
-                                   exact_camera_equation=args.exact)
+                                   exact_camera_equation=args.exact,
+                                   expected_camera_constant_px_A=args.expect_k)
     c = cal.centre
     rec = {
         "software": software_record(),

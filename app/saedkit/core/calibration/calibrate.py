@@ -456,6 +456,7 @@ def find_ring_indexing(
     wavelength_A: float | None = None,
     n_anchor_rings: int = 8,
     n_anchor_families: int = 10,
+    camera_constant_range_px_A: tuple[float, float] | None = None,
 ) -> RingIndexing | None:
     """Assign measured ring radii to ring families without knowing K.
 
@@ -493,6 +494,11 @@ def find_ring_indexing(
     n_anchor_rings, n_anchor_families : int
         Hypotheses ``K = R_i·d_j`` are made for the strongest rings ``i`` and
         the first families ``j``.
+    camera_constant_range_px_A : (lo, hi), optional
+        Only hypotheses with K in this range (e.g. ±10 % about the K that the
+        microscope's nominal camera length gives). The only way to tell the
+        standard from a specimen of the same structure whose rings are not much
+        weaker or stronger (Au on Cu: identical radius ratios).
 
     Returns
     -------
@@ -536,6 +542,13 @@ def find_ring_indexing(
     hyp = (R[anchors, None] / q[None, : max(1, int(n_anchor_families))]).ravel()
     hyp = np.unique(np.round(np.log(hyp) / (tol / 4.0)))  # one hypothesis per tol/4 in K
     hyp = np.exp(hyp * (tol / 4.0))
+    if camera_constant_range_px_A is not None:
+        k_lo, k_hi = (float(v) for v in camera_constant_range_px_A)
+        if not (0 < k_lo < k_hi):
+            raise InputError(f"camera_constant_range_px_A must be (lo, hi) with 0 < lo < hi, got {camera_constant_range_px_A!r}")
+        hyp = hyp[(hyp >= k_lo) & (hyp <= k_hi)]
+        if len(hyp) == 0:
+            return None
     # first pass: matched weight of every hypothesis
     first = []
     for K in hyp:
@@ -881,6 +894,8 @@ def calibrate_from_rings(
     min_snr: float = 4.0,
     fit_ellipse: bool = True,
     exact_camera_equation: bool = False,
+    expected_camera_constant_px_A: float | None = None,
+    expected_range_pct: float = 10.0,
     progress: Callable[[int, int], None] | None = None,
     should_stop: Callable[[], bool] | None = None,
 ) -> Calibration:
@@ -913,6 +928,13 @@ def calibrate_from_rings(
     exact_camera_equation : bool
         Use ``R = L·tan 2θ`` instead of ``R = K/d`` (differs by about 10⁻⁴ for
         Au at 200 kV; see :mod:`saedkit.core.optics`).
+    expected_camera_constant_px_A : float, optional
+        Roughly the K to expect (from the nominal camera length): the rings are
+        then assigned only with K within ``expected_range_pct`` of it. Needed
+        when the film holds a second phase of the standard's structure (Cu
+        with an Au standard) whose rings are about as strong.
+    expected_range_pct : float
+        Half-width of that window, percent.
     progress : callable(done, total), optional
     should_stop : callable() -> bool, optional
         Polled between steps; the fit stops with FitError when it returns True.
@@ -974,6 +996,13 @@ def calibrate_from_rings(
     else:
         mask = own_mask
     exact = bool(exact_camera_equation)
+    k_range = None
+    if expected_camera_constant_px_A is not None:
+        k_exp = check_positive("expected_camera_constant_px_A", expected_camera_constant_px_A)
+        span = check_positive("expected_range_pct", expected_range_pct) / 100.0
+        if span >= 1:
+            raise InputError(f"expected_range_pct must be below 100, got {expected_range_pct!r}")
+        k_range = (k_exp * (1 - span), k_exp * (1 + span))
 
     total = 10
 
@@ -1028,10 +1057,11 @@ def calibrate_from_rings(
     idxg = find_ring_indexing(
         R[use], fam_d, d_tolerance_pct=tol_pct, snr=snr[use], height=height[use], family_intensity=fam_I,
         noise_at=noise_at, radius_range_px=(lo, 1.01 * float(R[use].max())), min_snr=min_snr,
-        exact=exact, wavelength_A=lam, n_anchor_families=n_anchor_fam,
+        exact=exact, wavelength_A=lam, n_anchor_families=n_anchor_fam, camera_constant_range_px_A=k_range,
     )
     if idxg is None:
-        raise FitError(f"no camera constant lines up the {len(use)} measured rings with the rings of {phase.name}")
+        where = "" if k_range is None else f" with K in {k_range[0]:.1f}–{k_range[1]:.1f} px·Å"
+        raise FitError(f"no camera constant{where} lines up the {len(use)} measured rings with the rings of {phase.name}")
     fam_of = np.full(len(R), -1)
     fam_of[use] = idxg.family_index
     report(7)
