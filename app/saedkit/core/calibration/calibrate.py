@@ -8,7 +8,11 @@ pixels). It is found from a pattern of a standard whose spacings are known:
   evaporated Au or Al film, say). The rings are found and measured by
   :func:`saedkit.core.detection.rings.find_rings`; each ring is then assigned to one of
   the standard's allowed ring families **without being told K**
-  (:func:`find_ring_indexing`), and ``K`` is fitted together with the centre
+  (:func:`find_ring_indexing`: every hypothesis ``K = R·d`` is scored by how
+  well *all* the standard's rings fit it — radius misfit, intensity against
+  the family's ``m·|F|²``, strong rings predicted but not seen — so in a
+  two-phase film the standard's series wins, not the strongest series), and
+  ``K`` is fitted together with the centre
   and the elliptical distortion to points sampled around every assigned ring,
   each ring's ideal radius tied to ``K/d``.
 * :func:`calibrate_from_spots` — the spot pattern of a single crystal (Si at
@@ -26,7 +30,10 @@ with the calibration's ellipse correction and propagate the uncertainties.
 Quality checks (each gives a warning; those marked * make the quality "poor"):
 
 * fewer than three rings assigned *;
-* a clear ring that matches no family of the standard *;
+* clear rings that match no family of the standard: another phase (the
+  specimen on an internal standard; a warning, and they are listed in
+  ``unassigned_radii_px``), or — when most of them fall on reflections that
+  the standard's space group or sites extinguish — the wrong standard *;
 * ring radii that deviate from ``K/d`` beyond their uncertainties (reduced
   χ² > 9 and an RMS residual above 0.05 %) *, or a significant trend of the
   residual with radius (t > 3 and more than 0.1 % across the rings) *;
