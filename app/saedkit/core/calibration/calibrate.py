@@ -515,12 +515,16 @@ def find_ring_indexing(
     Notes
     -----
     Every pairing of an anchor ring with an anchor family is a hypothesis
-    ``K = R·d``. Each is scored by the (SNR-weighted) number of rings that
-    fall within the tolerance of a family, refined by least squares over the
-    matched rings and re-matched twice, and penalised for each strong family
-    that it predicts inside the measured range where no ring was found. The
-    best score wins; ties go to more matched rings, then to the smaller RMS
-    residual.
+    ``K = R·d``, refined by least squares over the rings within the
+    tolerance of a family and re-matched twice. Each matched ring then counts
+    with its SNR weight times the likelihood of its radius misfit (Gaussian,
+    σ = a third of the tolerance) times ``2·exp(−½(δ/ln 3)²) − 1``, where δ is
+    the log ratio of its strength (``height·R``) to the family's ``m·|F|²``
+    after one common scale: factors of 2–3 (texture, few grains) count nearly
+    in full, a ring many times off its series counts against it. Each strong
+    family predicted inside the measured range where no ring was found costs
+    1. Rings left unexplained cost nothing (a second phase). The best score
+    wins; ties go to more matched rings, then to the smaller RMS residual.
 
     Examples
     --------
