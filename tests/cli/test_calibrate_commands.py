@@ -188,3 +188,31 @@ def test_errors_in_process(film, tmp_path, capsys):
     write_tiff(noinfo, np.random.default_rng(0).integers(0, 100, (64, 64)).astype(np.uint16))
     assert main(["calibrate", str(noinfo), "--standard", "Au"]) == 1
     assert "--kv" in capsys.readouterr().err
+
+
+def test_rings_lists_a_short_arc_as_rejected(tmp_path, capsys):
+    # a 20° arc at R = 335 px (between Au 422 and 511/333) (a streak or one grain, not a ring): not among the rings, and if the
+    # radial profile shows it, listed under rejected_rings with the reason
+    img, truth = simulate_ring_pattern(find_phase("Au"), shape=(600, 600), camera_constant_px_A=K_TRUE,
+                                       centre_xy=(303.4, 291.8), beam_stop=BeamStop(angle_deg=110),
+                                       rng=np.random.default_rng(43))
+    img = img.astype(np.float64)
+    yy, xx = np.indices(img.shape)
+    r = np.hypot(xx - 303.4, yy - 291.8)
+    phi = np.degrees(np.arctan2(yy - 291.8, xx - 303.4))
+    img[(np.abs(r - 335.0) < 2.0) & (np.abs(phi - 45.0) < 10.0)] += 400.0
+    path = tmp_path / "arc.tif"
+    write_tiff(path, img.astype(np.float32))
+    rec = _json(capsys, ["rings", str(path), "--json"])
+    assert all(abs(x["radius_px"] - 335.0) > 3.0 for x in rec["rings"])
+    near = [x for x in rec["rejected_rings"] if abs(x["radius_px"] - 335.0) < 3.0]
+    assert len(near) == 1 and "too little arc" in near[0]["reason"]
+
+
+def test_calibrate_with_expected_camera_constant(film, capsys):
+    path, truth = film
+    rec = _json(capsys, ["calibrate", str(path), "--standard", "Au", "--kv", "200", "--expect-k", "260", "--json"])
+    assert rec["camera_constant_px_A"] == pytest.approx(K_TRUE, rel=1e-3)
+    # a wrong expectation (K = 100 px·Å) forces a wrong assignment, which the checks call poor
+    rec = _json(capsys, ["calibrate", str(path), "--standard", "Au", "--kv", "200", "--expect-k", "100", "--json"])
+    assert 90.0 <= rec["camera_constant_px_A"] <= 110.0 and rec["quality"] == "poor"

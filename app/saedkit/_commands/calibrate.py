@@ -65,6 +65,10 @@ def register(sub) -> None:
                       help="ring standards: use the small-angle form R = λL/d instead of the exact "
                       "R = L·tan 2θ (they differ by 2×10⁻⁵ to 4×10⁻³ relative at 60–300 kV, d = 3–0.5 Å); "
                       "--spots always uses the small-angle form")
+    p.add_argument("--expect-k", type=positive_float, metavar="K",
+                   help="roughly the camera constant to expect (px·Å, e.g. from the nominal camera length): "
+                   "rings are assigned only with K within ±10 %% of it — needed when a second phase of the "
+                   "standard's structure (Cu with Au) gives rings as strong as the standard's")
     p.add_argument("--spots", action="store_true",
                    help="the image is a single-crystal spot pattern of the standard (e.g. Si), not a ring pattern")
     p.add_argument("--zone", type=int, nargs=3, metavar=("U", "V", "W"),
@@ -114,7 +118,8 @@ def run(args):
     else:
         cal = calibrate_from_rings(image, phase, voltage_kv=kv, mask=mask, pixel_size_um=px,
                                    d_tolerance_pct=args.d_tol, min_snr=args.min_snr, fit_ellipse=not args.no_ellipse,
-                                   exact_camera_equation=not args.small_angle)
+                                   exact_camera_equation=not args.small_angle,
+                                   expected_camera_constant_px_A=args.expect_k)
     lib = CalibrationLibrary()
     nominal_L = args.nominal_camera_length_mm or image.camera_length_mm
     rep, basis = choose_reproducibility(args.reproducibility_pct, lib, voltage_kv=kv,

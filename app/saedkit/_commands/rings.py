@@ -87,6 +87,7 @@ def run(args):
         },
         "residual_rms_px": finite_or_none(fit.residual_rms_px),
         "rings": rings,
+        "rejected_rings": [x.to_dict() for x in fit.rejected],
         "calibration": calibration_source_record(camera),
     }
     if camera is not None:
@@ -113,6 +114,8 @@ def run(args):
         if camera is not None:
             line += f" {m.d_A[i]:9.4f} {m.d_sigma_A[i]:8.4f}"
         lines.append(line)
+    for x in fit.rejected:
+        lines.append(f"  not a ring: R = {x.peak.radius_px:.1f} px, {x.reason}")
     if camera is None:
         lines.append("(no calibration: give --calibration NAME or --camera-constant K for d-spacings)")
     return rec, "\n".join(lines)

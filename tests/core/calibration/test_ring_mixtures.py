@@ -14,6 +14,7 @@ from saedkit.core.calibration.calibrate import calibrate_from_rings
 from saedkit.core.crystallography.library import find_phase
 from saedkit.core.detection.masks import find_auto_mask
 from saedkit.core.distortion import Ellipse
+from saedkit.core.errors import SaedkitError
 from saedkit.core.simulation.render import BeamStop
 from saedkit.core.simulation.simulate import simulate_ring_pattern
 
@@ -148,3 +149,30 @@ def test_ring_on_too_little_arc_is_rejected_with_its_reason():
     if near:  # found in the profile: reported as rejected, with the reason
         assert "too little arc" in near[0].reason
         assert "reason" in fit.to_dict()["rejected_rings"][0]
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_rings_of_very_few_grains_still_calibrate(seed):
+    # about 15 spots on the richest ring, 5-10 on the others: K within 0.2 % and the rings of
+    # the standard assigned; a ring measured twice (two nearby profile peaks in an early round)
+    # is reported once
+    img, truth, mask = _sim(seed, spots_per_ring=15.0)
+    cal = calibrate_from_rings(img, "Au", voltage_kv=200, mask=mask)
+    assert abs(cal.camera_constant_px_A / 250.0 - 1) < 2e-3
+    assert [r.hkl for r in cal.rings] == list(truth.hkl)
+    assert len(cal.unassigned_radii_px) <= 1
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_expected_camera_constant_settles_a_same_structure_specimen(seed):
+    # Cu rings weaker than Au's but of the same structure and close to the Au 200 ring (Cu 111 at
+    # 119.8 px, Au 200 at 122.6 px): told roughly what K to expect (4 % off, as a nominal camera
+    # length would be), the Au series is the one taken
+    img, truth, mask = _sim(seed, admixture=[(find_phase("Cu"), 0.6)])
+    cal = calibrate_from_rings(img, "Au", voltage_kv=200, mask=mask, expected_camera_constant_px_A=240.0)
+    assert abs(cal.camera_constant_px_A / 250.0 - 1) < 2e-3
+    assert [r.hkl for r in cal.rings][:1] == [(1, 1, 1)]
+    assert {(1, 1, 1), (2, 2, 0), (3, 1, 1), (2, 2, 2)} <= {r.hkl for r in cal.rings}
+    with pytest.raises(SaedkitError, match="expected_range_pct"):
+        calibrate_from_rings(img, "Au", voltage_kv=200, mask=mask, expected_camera_constant_px_A=240.0,
+                             expected_range_pct=150.0)

@@ -109,3 +109,42 @@ def test_bad_input():
         identify_phases([], PHASES)
     with pytest.raises(InputError, match="intensities"):
         identify_phases([2.0, 1.5], PHASES, intensities=[1.0])
+
+
+def test_au_with_rock_salt_from_published_lattice_parameters():
+    # Au a = 4.0782 Å (Maeland & Flanagan 1964) and NaCl a = 5.6402 Å (Walker et al. 2004):
+    # rings d = a/√N on the fcc sequence; NaCl's all-odd rings are weak (Na and Cl in antiphase,
+    # from memory of the powder-file intensities), so its 111, 311, 331 are left out here
+    d_au = 4.0782 / np.sqrt([3, 4, 8, 11, 12])
+    d_nacl = 5.6402 / np.sqrt([4, 8, 12, 16, 20, 24])
+    d = np.concatenate([d_au, d_nacl])
+    res = identify_phases(d, PHASES, d_tolerance_pct=1.0)
+    assert set(res.best.phases) == {"Au", "NaCl"}
+    # every ring goes to the phase it was made from (matches are in the order of d)
+    assert [m.phase for m in res.best.matches] == ["Au"] * len(d_au) + ["NaCl"] * len(d_nacl)
+
+
+@pytest.mark.parametrize("main,other,effect", [
+    ("Au", "Cu", dict(spots_per_ring=40.0)),
+    ("Au", "NaCl", dict(texture_arc_deg=25.0)),
+    ("Ni", "MgO", dict(halo_counts=1000.0)),
+    ("Fe", None, dict(texture_arc_deg=25.0)),
+])
+def test_phases_from_rings_found_on_real_looking_films(main, other, effect):
+    # the whole chain on a simulated film (invented data): rings found on the image, d = K/R with the
+    # known K, phases ranked — spotty, textured, halo and two-phase films
+    from saedkit.core.detection.masks import find_auto_mask
+    from saedkit.core.detection.rings import find_rings
+    from saedkit.core.distortion import Ellipse
+    from saedkit.core.simulation.render import BeamStop
+    from saedkit.core.simulation.simulate import simulate_ring_pattern
+
+    n, K = 512, 250.0
+    img, t = simulate_ring_pattern(find_phase(main), shape=(n, n), camera_constant_px_A=K,
+                                   ellipse=Ellipse(0.01, 30.0), centre_xy=(n / 2 + 6.8, n / 2 - 4.6),
+                                   beam_stop=BeamStop(70.0), rng=np.random.default_rng(1),
+                                   admixture=[(find_phase(other), 1.0)] if other else (), **effect)
+    fit = find_rings(img, mask=find_auto_mask(img.astype(np.float32), saturation_value=65535))
+    res = identify_phases([K / r.radius_px for r in fit.rings], PHASES,
+                          intensities=[max(r.height, 0.0) for r in fit.rings])
+    assert set(res.best.phases) == ({main, other} if other else {main})

@@ -8,7 +8,11 @@ pixels). It is found from a pattern of a standard whose spacings are known:
   evaporated Au or Al film, say). The rings are found and measured by
   :func:`saedkit.core.detection.rings.find_rings`; each ring is then assigned to one of
   the standard's allowed ring families **without being told K**
-  (:func:`find_ring_indexing`), and ``K`` is fitted together with the centre
+  (:func:`find_ring_indexing`: every hypothesis ``K = R·d`` is scored by how
+  well *all* the standard's rings fit it — radius misfit, intensity against
+  the family's ``m·|F|²``, strong rings predicted but not seen — so in a
+  two-phase film the standard's series wins, not the strongest series), and
+  ``K`` is fitted together with the centre
   and the elliptical distortion to points sampled around every assigned ring,
   each ring's ideal radius tied to ``K/d``.
 * :func:`calibrate_from_spots` — the spot pattern of a single crystal (Si at
@@ -26,7 +30,10 @@ with the calibration's ellipse correction and propagate the uncertainties.
 Quality checks (each gives a warning; those marked * make the quality "poor"):
 
 * fewer than three rings assigned *;
-* a clear ring that matches no family of the standard *;
+* clear rings that match no family of the standard: another phase (the
+  specimen on an internal standard; a warning, and they are listed in
+  ``unassigned_radii_px``), or — when most of them fall on reflections that
+  the standard's space group or sites extinguish — the wrong standard *;
 * ring radii that deviate from ``K/d`` beyond their uncertainties (reduced
   χ² > 9 and an RMS residual above 0.05 %) *, or a significant trend of the
   residual with radius (t > 3 and more than 0.1 % across the rings) *;
@@ -495,6 +502,7 @@ def find_ring_indexing(
     wavelength_A: float | None = None,
     n_anchor_rings: int = 8,
     n_anchor_families: int = 10,
+    camera_constant_range_px_A: tuple[float, float] | None = None,
 ) -> RingIndexing | None:
     """Assign measured ring radii to ring families without knowing K.
 
@@ -532,6 +540,11 @@ def find_ring_indexing(
     n_anchor_rings, n_anchor_families : int
         Hypotheses ``K = R_i·d_j`` are made for the strongest rings ``i`` and
         the first families ``j``.
+    camera_constant_range_px_A : (lo, hi), optional
+        Only hypotheses with K in this range (e.g. ±10 % about the K that the
+        microscope's nominal camera length gives). The only way to tell the
+        standard from a specimen of the same structure whose rings are not much
+        weaker or stronger (Au on Cu: identical radius ratios).
 
     Returns
     -------
@@ -541,12 +554,16 @@ def find_ring_indexing(
     Notes
     -----
     Every pairing of an anchor ring with an anchor family is a hypothesis
-    ``K = R·d``. Each is scored by the (SNR-weighted) number of rings that
-    fall within the tolerance of a family, refined by least squares over the
-    matched rings and re-matched twice, and penalised for each strong family
-    that it predicts inside the measured range where no ring was found. The
-    best score wins; ties go to more matched rings, then to the smaller RMS
-    residual.
+    ``K = R·d``, refined by least squares over the rings within the
+    tolerance of a family and re-matched twice. Each matched ring then counts
+    with its SNR weight times the likelihood of its radius misfit (Gaussian,
+    σ = a third of the tolerance) times ``2·exp(−½(δ/ln 3)²) − 1``, where δ is
+    the log ratio of its strength (``height·R``) to the family's ``m·|F|²``
+    after one common scale: factors of 2–3 (texture, few grains) count nearly
+    in full, a ring many times off its series counts against it. Each strong
+    family predicted inside the measured range where no ring was found costs
+    1. Rings left unexplained cost nothing (a second phase). The best score
+    wins; ties go to more matched rings, then to the smaller RMS residual.
 
     Examples
     --------
@@ -575,6 +592,13 @@ def find_ring_indexing(
     hyp = (R[anchors, None] / q[None, : max(1, int(n_anchor_families))]).ravel()
     hyp = np.unique(np.round(np.log(hyp) / (tol / 4.0)))  # one hypothesis per tol/4 in K
     hyp = np.exp(hyp * (tol / 4.0))
+    if camera_constant_range_px_A is not None:
+        k_lo, k_hi = (float(v) for v in camera_constant_range_px_A)
+        if not (0 < k_lo < k_hi):
+            raise InputError(f"camera_constant_range_px_A must be (lo, hi) with 0 < lo < hi, got {camera_constant_range_px_A!r}")
+        hyp = hyp[(hyp >= k_lo) & (hyp <= k_hi)]
+        if len(hyp) == 0:
+            return None
     # first pass: matched weight of every hypothesis
     first = []
     for K in hyp:
@@ -920,6 +944,8 @@ def calibrate_from_rings(
     min_snr: float = 4.0,
     fit_ellipse: bool = True,
     exact_camera_equation: bool = False,
+    expected_camera_constant_px_A: float | None = None,
+    expected_range_pct: float = 10.0,
     progress: Callable[[int, int], None] | None = None,
     should_stop: Callable[[], bool] | None = None,
 ) -> Calibration:
@@ -952,6 +978,13 @@ def calibrate_from_rings(
     exact_camera_equation : bool
         Use ``R = L·tan 2θ`` instead of ``R = K/d`` (differs by about 10⁻⁴ for
         Au at 200 kV; see :mod:`saedkit.core.optics`).
+    expected_camera_constant_px_A : float, optional
+        Roughly the K to expect (from the nominal camera length): the rings are
+        then assigned only with K within ``expected_range_pct`` of it. Needed
+        when the film holds a second phase of the standard's structure (Cu
+        with an Au standard) whose rings are about as strong.
+    expected_range_pct : float
+        Half-width of that window, percent.
     progress : callable(done, total), optional
     should_stop : callable() -> bool, optional
         Polled between steps; the fit stops with FitError when it returns True.
@@ -1013,6 +1046,13 @@ def calibrate_from_rings(
     else:
         mask = own_mask
     exact = bool(exact_camera_equation)
+    k_range = None
+    if expected_camera_constant_px_A is not None:
+        k_exp = check_positive("expected_camera_constant_px_A", expected_camera_constant_px_A)
+        span = check_positive("expected_range_pct", expected_range_pct) / 100.0
+        if span >= 1:
+            raise InputError(f"expected_range_pct must be below 100, got {expected_range_pct!r}")
+        k_range = (k_exp * (1 - span), k_exp * (1 + span))
 
     total = 10
 
@@ -1067,10 +1107,11 @@ def calibrate_from_rings(
     idxg = find_ring_indexing(
         R[use], fam_d, d_tolerance_pct=tol_pct, snr=snr[use], height=height[use], family_intensity=fam_I,
         noise_at=noise_at, radius_range_px=(lo, 1.01 * float(R[use].max())), min_snr=min_snr,
-        exact=exact, wavelength_A=lam, n_anchor_families=n_anchor_fam,
+        exact=exact, wavelength_A=lam, n_anchor_families=n_anchor_fam, camera_constant_range_px_A=k_range,
     )
     if idxg is None:
-        raise FitError(f"no camera constant lines up the {len(use)} measured rings with the rings of {phase.name}")
+        where = "" if k_range is None else f" with K in {k_range[0]:.1f}–{k_range[1]:.1f} px·Å"
+        raise FitError(f"no camera constant{where} lines up the {len(use)} measured rings with the rings of {phase.name}")
     fam_of = np.full(len(R), -1)
     fam_of[use] = idxg.family_index
     report(7)

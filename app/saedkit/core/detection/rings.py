@@ -1750,17 +1750,39 @@ def find_rings(
     rings: list[RingPeak] = []
     rejected: list[RejectedRing] = []
     matched = set()
+    # two measured rings on one narrow peak of the final profile are one ring split in two (an
+    # early profile about a rough centre can show a ring of few grains' spots as two peaks, and
+    # each then gathers points): the one nearer the peak is kept. A peak wider than the rings
+    # usually are may hold two real rings that the points resolve, and is left alone
+    peak_of: dict[int, int] = {}
+    near_j = []
+    for k in range(len(used)):
+        r_fit = float(fit.radius_px[k])
+        j = int(np.argmin([abs(q.radius_px - r_fit) for q in final_peaks])) if final_peaks else -1
+        ok = j >= 0 and abs(final_peaks[j].radius_px - r_fit) <= max(final_peaks[j].width_px, 2.0 * bin_px)
+        near_j.append(j if ok else -1)
+    w_med = float(np.median([q.width_px for q in final_peaks])) if final_peaks else 0.0
+    for k, j in enumerate(near_j):
+        if j < 0 or final_peaks[j].width_px > 1.3 * w_med:
+            continue
+        other = peak_of.get(j)
+        d_k = abs(final_peaks[j].radius_px - fit.radius_px[k])
+        if other is None or d_k < abs(final_peaks[j].radius_px - fit.radius_px[other]):
+            peak_of[j] = k
     for k, p_used in enumerate(used):
         r_fit = float(fit.radius_px[k])
         arc = _arc_deg(used_pts[k][fit.inliers[k]], fit.centre.xy)
         best = None
-        if final_peaks:
-            j = int(np.argmin([abs(q.radius_px - r_fit) for q in final_peaks]))
-            q = final_peaks[j]
-            if abs(q.radius_px - r_fit) <= max(q.width_px, 2.0 * bin_px):
-                best = q
-                matched.add(j)
+        j = near_j[k]
+        if j >= 0:
+            best = final_peaks[j]
+            matched.add(j)
         src = best or p_used
+        if j >= 0 and peak_of.get(j, k) != k:
+            rejected.append(RejectedRing(src, (
+                f"at R = {r_fit:.2f} px, on the same single peak of the radial profile as the ring at "
+                f"{float(fit.radius_px[peak_of[j]]):.2f} px: one ring measured twice")))
+            continue
         if arc < MIN_ARC_DEG:
             rejected.append(RejectedRing(src, (
                 f"measured on {arc:.0f}° of its circle only (at least {MIN_ARC_DEG:g}° needed): "
