@@ -74,15 +74,9 @@ def run(args):
     bf, adf = default_detector_radii(series.frame_shape)
     bf = args.bf_radius or bf
     adf = tuple(args.adf_radii) if args.adf_radii else (min(2 * bf, adf[1] / 2), adf[1])
-    cal = resolve_calibration_options(args)
-    kw: dict = {}
-    if cal is not None:
-        K, K_sig, _ellipse, source = cal
-        if args.calibration:
-            kw["calibration"] = source
-        else:
-            kw["camera_constant_px_A"], kw["camera_constant_sigma_px_A"] = K, K_sig
-    kv = args.kv or (getattr(cal[3], "voltage_kv", None) if cal is not None else None) or 200.0
+    cal = resolve_calibration_options(args, voltage_kv=args.kv)  # a camera model (saved or typed), or None
+    kw: dict = {} if cal is None else {"calibration": cal}
+    kv = args.kv or getattr(cal, "voltage_kv", None) or 200.0
     options = SeriesOptions(phases=tuple(args.phase or ()), voltage_kv=float(kv), min_snr=args.min_snr,
                             d_tolerance_pct=args.d_tol, angle_tolerance_deg=args.angle_tol,
                             max_index=args.max_index, top=args.top, drift_tolerance_px=args.drift_tol,

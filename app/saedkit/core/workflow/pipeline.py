@@ -238,6 +238,22 @@ def subtract_rings(data: np.ndarray, centre_xy, ellipse, *, mask: np.ndarray | N
     return np.clip(a - med[b].reshape(a.shape), 0.0, None)
 
 
+def _mask_strong_spots(image, mask: np.ndarray, options: PipelineOptions) -> np.ndarray:
+    """``mask`` with discs over the crystal's strong spots, so that an internal standard's ring fit sees only rings.
+
+    A few strong spots of the specimen on one radius (e.g. the four {200} of a cubic [001] grain) would
+    otherwise read as a ring of the standard and pull its assignment to another K.
+    """
+    from saedkit.core.detection.masks import mask_disc
+    from saedkit.core.detection.spots import find_spots
+
+    strong = find_spots(image.data, mask=mask, min_snr=max(4.0 * options.min_snr, 20.0), max_spots=400)
+    out = np.asarray(mask, bool).copy()
+    for sp in strong:
+        out = mask_disc(out, (sp.x, sp.y), max(4.0 * float(sp.width_px), 5.0))
+    return out
+
+
 def calibrate_rings(image, standard: Phase, mask: np.ndarray, *, options: PipelineOptions = DEFAULT_OPTIONS,
                     reproducibility_pct: float | None = None, internal_standard: bool = False,
                     progress: Progress | None = None, should_stop: Stop | None = None):
@@ -391,7 +407,7 @@ def analyse_spot_pattern(
         if calibration is not None or camera_constant_px_A is not None:
             raise InputError("an internal standard calibrates the pattern itself: give no calibration or "
                              "camera constant with it")
-        camera = calibrate_rings(image, internal_standard, mask, options=opts,
+        camera = calibrate_rings(image, internal_standard, _mask_strong_spots(image, mask, opts), options=opts,
                                  reproducibility_pct=reproducibility_pct, internal_standard=True,
                                  should_stop=should_stop)
     else:
