@@ -6,6 +6,7 @@ import argparse
 
 from saedkit._commands._calib_options import add_calibration_options, resolve_calibration_options
 from saedkit._commands._common import add_json_option, software_record
+from saedkit._commands._image_options import add_image_options, resolve_centre, resolve_mask
 from saedkit._commands._index_options import add_match_options, describe_candidates, resolve_phases
 
 EXAMPLES = """\
@@ -26,6 +27,7 @@ def register(sub) -> None:
     p.add_argument("image", help="pattern image (TIFF, PNG, JPEG, MRC or NPY)")
     add_match_options(p)
     add_calibration_options(p)
+    add_image_options(p)
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -48,7 +50,8 @@ def run_analysis(args):
             kwargs["camera_constant_sigma_px_A"] = K_sig
     return analyse_spot_pattern(
         image, phases=phases, voltage_kv=args.kv, min_snr=args.min_snr, d_tolerance_pct=args.d_tol,
-        angle_tolerance_deg=args.angle_tol, max_index=args.max_index, top=args.top, **kwargs)
+        angle_tolerance_deg=args.angle_tol, max_index=args.max_index, top=args.top,
+        mask=resolve_mask(args, image), centre_xy=resolve_centre(args, image), **kwargs)
 
 
 def run(args):

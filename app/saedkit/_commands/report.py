@@ -6,6 +6,7 @@ import argparse
 
 from saedkit._commands._calib_options import add_calibration_options
 from saedkit._commands._common import add_json_option, positive_float, software_record
+from saedkit._commands._image_options import add_image_options, resolve_mask
 from saedkit._commands._index_options import add_match_options
 
 EXAMPLES = """\
@@ -29,6 +30,7 @@ def register(sub) -> None:
     p.add_argument("--pixel-size-um", type=positive_float, metavar="P", help="detector pixel size in µm (ring standard)")
     add_match_options(p, phases_required=False)
     add_calibration_options(p)
+    add_image_options(p)
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -44,7 +46,8 @@ def run(args):
         from saedkit.core.crystallography.library import find_phase
         from saedkit.core.workflow.pipeline import analyse_ring_pattern
 
-        analysis = analyse_ring_pattern(read_pattern(args.image), standard=find_phase(args.standard),
+        image = read_pattern(args.image)
+        analysis = analyse_ring_pattern(image, standard=find_phase(args.standard), mask=resolve_mask(args, image),
                                         voltage_kv=args.kv, pixel_size_um=args.pixel_size_um)
     else:
         if not args.phase:

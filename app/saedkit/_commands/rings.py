@@ -6,6 +6,7 @@ import argparse
 
 from saedkit._commands._calib_options import add_calibration_options, calibration_source_record, resolve_calibration_options
 from saedkit._commands._common import add_json_option, finite_or_none, positive_float, software_record
+from saedkit._commands._image_options import add_image_options, resolve_centre, resolve_mask
 
 _EPILOG = """\
 examples:
@@ -34,6 +35,7 @@ def register(sub) -> None:
     p.add_argument("--min-snr", type=positive_float, default=4.0, metavar="S",
                    help="smallest ring signal-to-noise ratio in the radial profile (default 4)")
     p.add_argument("--no-ellipse", action="store_true", help="fit circles (no elliptical distortion)")
+    add_image_options(p, centre_is_guess=True)
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -51,8 +53,11 @@ def run(args):
 
     resolved = resolve_calibration_options(args)
     image = read_pattern(args.image)
-    mask = np.asarray(image.mask, bool) | find_auto_mask(image.data, saturation_value=image.saturation_value)
-    fit = find_rings(image.data, mask=mask, min_snr=args.min_snr, fit_ellipse=not args.no_ellipse)
+    mask = resolve_mask(args, image)
+    if mask is None:
+        mask = np.asarray(image.mask, bool) | find_auto_mask(image.data, saturation_value=image.saturation_value)
+    fit = find_rings(image.data, mask=mask, min_snr=args.min_snr, fit_ellipse=not args.no_ellipse,
+                     centre_guess_xy=resolve_centre(args, image))
     c, ell = fit.centre, fit.ellipse
     R = np.array([r.radius_px for r in fit.rings])
     sR = np.array([r.radius_sigma_px for r in fit.rings])

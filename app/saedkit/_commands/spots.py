@@ -6,6 +6,7 @@ import argparse
 
 from saedkit._commands._calib_options import add_calibration_options, calibration_source_record, resolve_calibration_options
 from saedkit._commands._common import add_json_option, finite_or_none, positive_float, software_record
+from saedkit._commands._image_options import add_image_options, resolve_centre, resolve_mask
 
 _EPILOG = """\
 examples:
@@ -13,8 +14,14 @@ examples:
   saedkit spots grain.tif --json --min-snr 8
   saedkit spots grain.tif --calibration "200 kV CL 600 mm"
   saedkit spots grain.tif --camera-constant 1520.4 --json
+  saedkit spots frame.tif --centre 255.4 261.0 --mask gaps.tif
 
-The centre comes from the Friedel symmetry of the pattern. With a
+The centre comes from the direct beam, the Friedel pairs of spot positions,
+the support-film halo or the symmetry of the pattern, whichever is clearest
+(centre_method, centre_confidence and centre_notes say which and why), or
+from --centre X Y. Detector gaps, hot and dead pixels, the saturated beam and
+a beam stop are masked automatically; --mask FILE adds pixels of your own.
+Saturated spots are kept for their positions and flagged ("saturated"). With a
 calibration, each spot's offset from the centre is corrected for the
 calibration's elliptical distortion before d = K/R; σ_d combines the spot's
 and the centre's position uncertainties with σ_K.
@@ -35,6 +42,7 @@ def register(sub) -> None:
     p.add_argument("--min-snr", type=positive_float, default=5.0, metavar="S",
                    help="smallest spot peak signal-to-noise ratio (default 5)")
     p.add_argument("--max-spots", type=int, default=1000, metavar="N", help="keep at most N spots (default 1000)")
+    add_image_options(p)
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -46,7 +54,7 @@ def run(args):
     import numpy as np
 
     from saedkit.core.calibration.calibrate import calculate_d_from_offset_array, calculate_d_sigma_array
-    from saedkit.core.detection.centre import find_centre_spots
+    from saedkit.core.detection.centre import find_centre, manual_centre
     from saedkit.core.distortion import NO_DISTORTION
     from saedkit.core.errors import InputError
     from saedkit.core.imageio import read_pattern
@@ -57,8 +65,11 @@ def run(args):
         raise InputError(f"--max-spots must be >= 1, got {args.max_spots}")
     resolved = resolve_calibration_options(args)
     image = read_pattern(args.image)
-    mask = np.asarray(image.mask, bool) | find_auto_mask(image.data, saturation_value=image.saturation_value)
-    centre = find_centre_spots(image.data, mask=mask)
+    mask = resolve_mask(args, image)
+    if mask is None:
+        mask = np.asarray(image.mask, bool) | find_auto_mask(image.data, saturation_value=image.saturation_value)
+    given = resolve_centre(args, image)
+    centre = manual_centre(*given, sigma_px=0.5) if given else find_centre(image.data, mask=mask)
     spots = find_spots(image.data, mask=mask, centre_xy=centre.xy, min_snr=args.min_snr, max_spots=args.max_spots)
     if resolved is not None:
         K, sK, ell, source = resolved
@@ -94,6 +105,7 @@ def run(args):
             "intensity": s.intensity, "intensity_sigma": finite_or_none(s.intensity_sigma),
             "peak": s.peak, "snr": s.snr, "width_px": s.width_px,
             "radius_px": float(R[i]), "radius_sigma_px": finite_or_none(sR[i]), "angle_deg": float(angle[i]),
+            "saturated": bool(s.saturated),
         }
         if d is not None:
             e["d_A"] = finite_or_none(d[i])
@@ -105,6 +117,8 @@ def run(args):
         "centre_px": [centre.x, centre.y],
         "centre_sigma_px": [finite_or_none(centre.sigma_x), finite_or_none(centre.sigma_y)],
         "centre_method": centre.method,
+        "centre_confidence": centre.confidence,
+        "centre_notes": list(centre.notes),
         "spots": out,
         "calibration": calibration_source_record(resolved),
     }

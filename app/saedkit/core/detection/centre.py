@@ -41,7 +41,8 @@ class CentreResult:
         Standard uncertainties, pixels.
     method : str
         How it was found: ``"direct-beam"``, ``"friedel-pairs"``,
-        ``"film-halo"``, ``"friedel-correlation"``, ``"rings"``,
+        ``"film-halo"``, ``"friedel-correlation"``, ``"brightest-region"`` (nothing
+        clearer found), ``"rings"``,
         ``"spot-lattice"`` or ``"manual"``.
     n_used : int
         Number of pairs, rings or points behind the estimate (0 when manual).
@@ -700,12 +701,32 @@ def _fit_direct_beam(img: np.ndarray, hard: np.ndarray | None, sat: np.ndarray |
                      f"{dominance:.1f}x the flux of the brightest other feature")
 
 
-def _direct_beam_guess(data, mask=None):
-    """[x, y] of a clearly visible direct beam (confidence >= 0.6), else None."""
-    from saedkit.core.detection.spots import _prepare
+def _split_mask(data, mask):
+    """(float image with excluded pixels zeroed, hard mask or None, saturated pixels outside
+    the user's mask or None, saturation level): saturated pixels count as signal for the
+    beam, the rest of the mask (e.g. a doubled gap line clipped in the beam) does not."""
+    from saedkit.core.detection.spots import _check_mask, _prepare
 
     img, bad, sat, sat_level = _prepare(data, mask)
-    hard = None if bad is None else (bad if sat is None else bad & ~sat)
+    user = _check_mask(mask, img.shape)
+    if sat is not None and user is not None:
+        # saturated pixels under the user's mask count only where they form a broad
+        # plateau (the beam), not a thin line (a doubled gap line clipped in the beam)
+        broad = ndi.binary_opening(sat, structure=np.ones((3, 3), bool))
+        sat = sat & ~(user & ~broad)
+        if not sat.any():
+            sat = None
+    hard = None
+    if bad is not None:
+        hard = bad if sat is None else (bad & ~sat)
+        if not hard.any():
+            hard = None
+    return img, hard, sat, sat_level
+
+
+def _direct_beam_guess(data, mask=None):
+    """[x, y] of a clearly visible direct beam (confidence >= 0.6), else None."""
+    img, hard, sat, sat_level = _split_mask(data, mask)
     beam = _fit_direct_beam(img, hard, sat, sat_level, None)
     return None if beam is None or beam.confidence < _GOOD else beam.xy
 
@@ -830,8 +851,6 @@ def find_centre(
     ------
     InputError
         Bad image, mask or guess.
-    FitError
-        Only when no method gives any estimate (e.g. a blank image).
 
     Notes
     -----
@@ -869,15 +888,10 @@ def find_centre(
     >>> bool(abs(c.x - 120.3) < 0.3 and abs(c.y - 131.6) < 0.3), c.method
     (True, 'friedel-pairs')
     """
-    from saedkit.core.detection.spots import _prepare, find_spots
+    from saedkit.core.detection.spots import find_spots
 
-    img, bad, sat, sat_level = _prepare(data, mask)
+    img, hard, sat, sat_level = _split_mask(data, mask)
     g = None if guess_xy is None else check_xy("guess_xy", guess_xy)
-    hard = None
-    if bad is not None:
-        hard = bad if sat is None else (bad & ~sat)
-        if not hard.any():
-            hard = None
     notes: list[str] = []
     estimates: list[_Estimate] = []
 
@@ -982,8 +996,17 @@ def find_centre(
             notes.append(estimates[-1].note)
     top = best_supported()
     if top is None:
-        raise FitError("no method found the centre: no direct beam, no Friedel pairs of spots, no ring, "
-                       "no point symmetry")
+        # nothing clear at all: the brightest region of the heavily smoothed image
+        w = np.ones(img.shape) if hard is None else (~hard).astype(np.float64)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            heavy = ndi.gaussian_filter(img.astype(np.float64) * w, 8.0) / ndi.gaussian_filter(w, 8.0)
+        heavy = np.where(np.isfinite(heavy), heavy, -np.inf)
+        iy, ix = np.unravel_index(int(np.argmax(heavy)), heavy.shape)
+        estimates.append(_Estimate(np.array([float(ix), float(iy)]), np.array([8.0, 8.0]), "brightest-region", 0,
+                                   0.05, "no direct beam, Friedel pairs, ring or point symmetry: the brightest "
+                                   "region of the smoothed image"))
+        notes.append(estimates[-1].note)
+        top = best_supported()
     chosen = top[1]
     if chosen.method != "friedel-pairs":
         res = refine_with_pairs(chosen, xy, sig)

@@ -1568,6 +1568,10 @@ def find_spots(
             raise InputError(f"exclude_radius_px must be a finite number >= 0, got {exclude_radius_px!r}")
     img, bad, sat, sat_level = _prepare(image, mask)
     _check_stop(should_stop)
+    # saturated pixels the user's mask covers (a doubled gap line clipped in the beam)
+    # are no place for a spot
+    user = _check_mask(mask, img.shape)
+    sat_free = sat if sat is None or user is None else sat & ~user
 
     s = spot_sigma_px if spot_sigma_px is not None else _estimate_sigma(img, bad, sat, sat_level, c)
     _check_stop(should_stop)
@@ -1587,12 +1591,12 @@ def find_spots(
     sep = min_separation_px if min_separation_px is not None else max(3.0, 3.0 * s)
     cands = _detect(
         img, bad, k, z_min=z_min, separation=sep, centre_xy=c_found, exclude_radius=excl,
-        beam=beam, should_stop=should_stop, allowed=sat,
+        beam=beam, should_stop=should_stop, allowed=sat_free,
     )
     _check_stop(should_stop)
     # pixels where no spot may be: the mask (saturated pixels are excluded from the
     # fits but may hold a spot, which is kept and flagged)
-    hard = bad if sat is None or bad is None else (bad & ~sat)
+    hard = bad if sat_free is None or bad is None else (bad & ~sat_free)
     if c is not None:
         excl = max(excl, 3.0 * s)  # the given centre is the direct beam, never a spot
     edge_px = max(2.0, 2.0 * s)
@@ -1624,12 +1628,12 @@ def find_spots(
             keep = keep and edge_px <= sp.x <= cols - 1 - edge_px and edge_px <= sp.y <= rows - 1 - edge_px
             if keep and c_found is not None and excl > 0:
                 keep = math.hypot(sp.x - c_found[0], sp.y - c_found[1]) > excl
-            if keep and _elongation(img, bad, sp, s) > _MAX_ELONGATION:
+            if keep and not _touches(sat_free, sp.x, sp.y, 2.0 * sp.width_px) and _elongation(img, bad, sp, s) > _MAX_ELONGATION:
                 keep = False  # a maximum along a line (Kikuchi line, streak), not a spot
             if keep and sp.width_px > _MAX_WIDTH_RATIO * s and not _touches(sat, sp.x, sp.y, 2.0 * sp.width_px):
                 keep = False  # far wider than the pattern's spots: a diffuse patch, not a spot
             if keep:
-                if _touches(sat, sp.x, sp.y, max(1.5, 2.0 * sp.width_px)):
+                if _touches(sat_free, sp.x, sp.y, max(1.5, 2.0 * sp.width_px)):
                     sp = replace(sp, saturated=True)
                 spots.append(sp)
         if progress is not None and ((i + 1) % step == 0 or i + 1 == limit):
@@ -1651,11 +1655,14 @@ _MAX_WIDTH_RATIO = 2.2
 def _elongation(img: np.ndarray, bad: np.ndarray | None, sp: Spot, s: float) -> float:
     """Ratio of the larger to the smaller principal second moment of the light of ``sp``.
 
-    The light is what stands more than 3 noise SDs above the spot's local
-    background after a 1 px Gaussian smoothing, in the connected region around the spot's pixel within a disc
+    The light is what stands more than 3 noise SDs and a quarter of the spot's
+    height above its local background after a 1 px Gaussian smoothing (so a
+    faint line under a bright spot does not join it), in the connected region around the spot's pixel within a disc
     of radius max(5, 4 s) (so isolated noise pixels do not count); each moment
     carries the 1/12 px² of a pixel's own extent. A region no longer than
     2 s along its major axis counts as round (1.0): a faint spot is a few pixels.
+    Light that runs on to the edge of the disc (a line, a crossing of two lines)
+    gives infinity.
     """
     rows, cols = img.shape
     rad = max(5.0, 4.0 * s)
@@ -1666,19 +1673,35 @@ def _elongation(img: np.ndarray, bad: np.ndarray | None, sp: Spot, s: float) -> 
     inside = dx * dx + dy * dy <= rad * rad
     if bad is not None:
         inside &= ~bad[y0:y1, x0:x1]
-    noise = sp.peak / sp.snr if sp.snr > 0 else 0.0
-    win = img[y0:y1, x0:x1].astype(float) - sp.background
+    raw = img[y0:y1, x0:x1].astype(float)
+    rr = np.hypot(dx, dy)
+    ring = inside & (rr >= rad - 2.0)
+    if ring.sum() < 8:
+        return 1.0
+    # the local background as a plane through the rim (a line crossing it is clipped)
+    plane, _ = _annulus_plane(dx[ring], dy[ring], raw[ring])
+    noise = sp.peak / sp.snr if sp.snr > 0 else 0.0  # the rim's own scatter includes the lines
+    win = raw - (plane[0] + plane[1] * dx + plane[2] * dy)
     if bad is not None:
         win = np.where(bad[y0:y1, x0:x1], 0.0, win)
     # smoothed by a 1 px Gaussian, which keeps white noise at 1/(2√π) of its SD:
     # a faint line then stays connected along its length
-    excess = ndi.gaussian_filter(win, 1.0, mode="nearest") - 3.0 * noise / (2.0 * math.sqrt(math.pi))
+    smooth = ndi.gaussian_filter(win, 1.0, mode="nearest")
+    iy, ix = int(round(sp.y)) - y0, int(round(sp.x)) - x0
+    if not (0 <= iy < win.shape[0] and 0 <= ix < win.shape[1]):
+        return 1.0
+    # the light: above 3 noise SDs of the smoothed image and above a quarter of the
+    # spot's own height, so a faint line under a bright spot does not join it
+    level = max(3.0 * noise / (2.0 * math.sqrt(math.pi)), 0.25 * float(smooth[iy, ix]))
+    excess = smooth - level
     above = (excess > 0) & inside
     lab, _ = ndi.label(above)
-    iy, ix = int(round(sp.y)) - y0, int(round(sp.x)) - x0
-    if not (0 <= iy < lab.shape[0] and 0 <= ix < lab.shape[1]) or lab[iy, ix] == 0:
+    if lab[iy, ix] == 0:
         return 1.0
-    w = np.where(lab == lab[iy, ix], excess, 0.0)
+    region = lab == lab[iy, ix]
+    if (rr[region] > rad - 1.5).any():
+        return float("inf")  # the light runs on out of the window: a line, a crossing of lines
+    w = np.where(region, excess, 0.0)
     tot = float(w.sum())
     mx, my = float((w * dx).sum() / tot), float((w * dy).sum() / tot)
     ex, ey = dx - mx, dy - my

@@ -77,7 +77,7 @@ def analyse_spot_pattern(
     centre_xy : [x, y], optional
         A known centre (skips the Friedel search).
     """
-    from saedkit.core.detection.centre import find_centre_spots, manual_centre
+    from saedkit.core.detection.centre import find_centre, manual_centre
     from saedkit.core.detection.masks import find_auto_mask
     from saedkit.core.indexing.matching import match_zone_axes
     from saedkit.core.detection.spots import find_spots, spots_xy_array
@@ -93,7 +93,7 @@ def analyse_spot_pattern(
     if centre_xy is not None:
         centre = manual_centre(float(centre_xy[0]), float(centre_xy[1]), sigma_px=0.5)
     else:
-        centre = find_centre_spots(data, mask=mask)
+        centre = find_centre(data, mask=mask)
     _stage(progress, 2, total)
     spots = find_spots(data, mask=mask, centre_xy=centre.xy, min_snr=min_snr, should_stop=should_stop)
     _stage(progress, 3, total)
@@ -198,7 +198,7 @@ def calibrate_spot_standard(
         given family) explains the pattern.
     """
     from saedkit.core.calibration.calibrate import calibrate_from_spots
-    from saedkit.core.detection.centre import find_centre_spots
+    from saedkit.core.detection.centre import find_centre
     from saedkit.core.errors import FitError
     from saedkit.core.detection.masks import find_auto_mask
     from saedkit.core.indexing.matching import match_zone_axes
@@ -210,7 +210,7 @@ def calibrate_spot_standard(
     data = image.data
     if mask is None:
         mask = np.asarray(image.mask, bool) | find_auto_mask(data, saturation_value=image.saturation_value)
-    centre = find_centre_spots(data, mask=mask)
+    centre = find_centre(data, mask=mask)
     spots = find_spots(data, mask=mask, centre_xy=centre.xy, min_snr=min_snr, should_stop=should_stop)
     if len(spots) < 3:
         raise FitError(f"{getattr(image, 'source_path', 'the image')}: only {len(spots)} spots found; "
