@@ -896,7 +896,8 @@ def find_centre(
     estimates: list[_Estimate] = []
 
     def spot_arrays(centre_xy):
-        found = spots if spots is not None else find_spots(data, mask=mask, centre_xy=centre_xy)
+        # centroids: enough for pair midpoints, and much cheaper than Gaussian fits
+        found = spots if spots is not None else find_spots(data, mask=mask, centre_xy=centre_xy, refine="centroid")
         good = list(found)
         xy = np.array([[s.x, s.y] for s in good], float).reshape(-1, 2)
         sig = np.array([[max(s.sigma_x, 1e-3), max(s.sigma_y, 1e-3)] for s in good], float).reshape(-1, 2)
