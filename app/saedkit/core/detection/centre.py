@@ -989,7 +989,8 @@ def find_centre(
             notes.append(f"symmetry correlation failed: {exc}")
         else:
             trusted = r_peak >= _MIN_CORRELATION
-            conf = float(np.clip(r_peak, 0, 1)) * (1.0 if trusted else 0.4)
+            # a clear point symmetry beats a periodic net's ambiguous pair votes
+            conf = float(np.clip(0.4 + r_peak, 0, 1)) if trusted else 0.4 * max(r_peak, 0.0)
             estimates.append(_Estimate(corr.xy, np.array([corr.sigma_x, corr.sigma_y]), "friedel-correlation",
                                        corr.n_used, conf, f"symmetry correlation r = {r_peak:.2f} "
                                        f"({prom:.0f} robust SD) at [{corr.x:.2f}, {corr.y:.2f}]"
