@@ -6,6 +6,7 @@ import argparse
 
 from saedkit._commands._calib_options import add_calibration_options, describe_camera, resolve_calibration_options
 from saedkit._commands._common import add_json_option, software_record
+from saedkit._commands._image_options import add_image_options, resolve_centre, resolve_mask
 from saedkit._commands._index_options import add_match_options, describe_candidates, resolve_phases
 
 EXAMPLES = """\
@@ -28,6 +29,7 @@ def register(sub) -> None:
     add_match_options(p)
     add_calibration_options(p)
     add_internal_standard_option(p)
+    add_image_options(p)
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -63,6 +65,7 @@ def run_analysis(args):
         raise InputError("--internal-standard calibrates the pattern itself: give no --calibration or "
                          "--camera-constant with it")
     return analyse_spot_pattern(image, phases=phases, calibration=camera, options=pipeline_options(args),
+                                mask=resolve_mask(args, image), centre_xy=resolve_centre(args, image),
                                 internal_standard=find_phase(standard) if standard else None,
                                 reproducibility_pct=getattr(args, "reproducibility_pct", None) if standard else None)
 

@@ -6,6 +6,7 @@ import argparse
 
 from saedkit._commands._calib_options import add_calibration_options
 from saedkit._commands._common import add_json_option, positive_float, software_record
+from saedkit._commands._image_options import add_image_options, resolve_mask
 from saedkit._commands._index_options import add_match_options
 from saedkit._commands.index import add_internal_standard_option
 
@@ -31,6 +32,7 @@ def register(sub) -> None:
     add_match_options(p, phases_required=False)
     add_calibration_options(p)
     add_internal_standard_option(p)
+    add_image_options(p)
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -48,7 +50,8 @@ def run(args):
 
         if args.calibration or args.camera_constant is not None:
             raise InputError("--standard calibrates the pattern: give no --calibration or --camera-constant with it")
-        analysis = analyse_ring_pattern(read_pattern(args.image), standard=find_phase(args.standard),
+        image = read_pattern(args.image)
+        analysis = analyse_ring_pattern(image, standard=find_phase(args.standard), mask=resolve_mask(args, image),
                                         voltage_kv=args.kv, pixel_size_um=args.pixel_size_um,
                                         reproducibility_pct=args.reproducibility_pct)
     else:

@@ -11,6 +11,7 @@ from saedkit._commands._calib_options import (
     resolve_calibration_options,
 )
 from saedkit._commands._common import add_json_option, finite_or_none, positive_float, software_record
+from saedkit._commands._image_options import add_image_options, resolve_centre, resolve_mask
 
 _EPILOG = """\
 examples:
@@ -39,6 +40,7 @@ def register(sub) -> None:
     p.add_argument("--min-snr", type=positive_float, default=4.0, metavar="S",
                    help="smallest ring signal-to-noise ratio in the radial profile (default 4)")
     p.add_argument("--no-ellipse", action="store_true", help="fit circles (no elliptical distortion)")
+    add_image_options(p, centre_is_guess=True)
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -51,7 +53,8 @@ def run(args):
     camera = resolve_calibration_options(args)
     image = read_pattern(args.image)
     opts = DEFAULT_OPTIONS.replace(ring_min_snr=args.min_snr, fit_ellipse=not args.no_ellipse)
-    fit = detect_rings(image, prepare_mask(image), options=opts)
+    fit = detect_rings(image, prepare_mask(image, resolve_mask(args, image)), options=opts,
+                       centre_guess_xy=resolve_centre(args, image))
     c, ell = fit.centre, fit.ellipse
     m = measure_radii([r.radius_px for r in fit.rings], [r.radius_sigma_px for r in fit.rings], camera)
     rings = []

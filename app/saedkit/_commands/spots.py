@@ -11,6 +11,7 @@ from saedkit._commands._calib_options import (
     resolve_calibration_options,
 )
 from saedkit._commands._common import add_json_option, positive_float, software_record
+from saedkit._commands._image_options import add_image_options, resolve_centre, resolve_mask
 
 _EPILOG = """\
 examples:
@@ -18,8 +19,14 @@ examples:
   saedkit spots grain.tif --json --min-snr 8
   saedkit spots grain.tif --calibration "200 kV CL 600 mm"
   saedkit spots grain.tif --camera-constant 1520.4 --json
+  saedkit spots frame.tif --centre 255.4 261.0 --mask gaps.tif
 
-The centre comes from the Friedel symmetry of the pattern. With a
+The centre comes from the direct beam, the Friedel pairs of spot positions,
+the support-film halo or the symmetry of the pattern, whichever is clearest
+(centre_method, centre_confidence and centre_notes say which and why), or
+from --centre X Y. Detector gaps, hot and dead pixels, the saturated beam and
+a beam stop are masked automatically; --mask FILE adds pixels of your own.
+Saturated spots are kept for their positions and flagged ("saturated"). With a
 calibration, each spot's offset from the centre is corrected for the
 calibration's elliptical distortion before d = K/R; σ_d combines the spot's
 and the centre's position uncertainties with σ_K.
@@ -40,6 +47,7 @@ def register(sub) -> None:
     p.add_argument("--min-snr", type=positive_float, default=5.0, metavar="S",
                    help="smallest spot peak signal-to-noise ratio (default 5)")
     p.add_argument("--max-spots", type=int, default=1000, metavar="N", help="keep at most N spots (default 1000)")
+    add_image_options(p)
     add_json_option(p)
     p.set_defaults(func=run)
 
@@ -57,8 +65,8 @@ def run(args):
     camera = resolve_calibration_options(args)
     image = read_pattern(args.image)
     opts = DEFAULT_OPTIONS.replace(min_snr=args.min_snr, max_spots=args.max_spots)
-    mask = prepare_mask(image)
-    centre = locate_centre(image, mask)
+    mask = prepare_mask(image, resolve_mask(args, image))
+    centre = locate_centre(image, mask, centre_xy=resolve_centre(args, image))
     spots = detect_spots(image, mask, centre, options=opts)
     analysis = Analysis(image=image, centre=centre, spots=spots, calibration=camera,
                         parameters={"min_snr": args.min_snr, "max_spots": args.max_spots})
@@ -66,6 +74,8 @@ def run(args):
     rec = analysis.to_dict()
     rec["software"] = software_record()
     rec["calibration"] = calibration_source_record(camera)
+    rec["centre_confidence"] = centre.confidence
+    rec["centre_notes"] = list(centre.notes)
     if camera is not None:
         rec["camera_constant_px_A"] = camera.camera_constant_px_A
         rec["camera_constant_rel_sigma"] = camera.camera_constant_rel_sigma

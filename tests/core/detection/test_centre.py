@@ -177,6 +177,7 @@ def test_centre_result_record():
     r = CentreResult(1.0, 2.0, 0.1, 0.2, "friedel-pairs", 5)
     assert r.to_dict() == {
         "centre_px": [1.0, 2.0], "centre_sigma_px": [0.1, 0.2], "method": "friedel-pairs", "n_used": 5,
+        "confidence": 1.0, "notes": [],
     }
 
 

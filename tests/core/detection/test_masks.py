@@ -12,6 +12,7 @@ from saedkit.core.detection.masks import (
     find_auto_mask,
     find_beam_stop_mask,
     find_saturated_mask,
+    find_detector_mask,
     mask_disc,
     mask_polygon,
     mask_rectangle,
@@ -227,16 +228,23 @@ def test_auto_mask_is_the_union():
     auto = find_auto_mask(image, centre_xy=truth.centre_xy, saturation_value=FULL_WELL)
     saturated = find_saturated_mask(image, saturation_value=FULL_WELL)
     stop_mask = find_beam_stop_mask(image, centre_xy=truth.centre_xy)
-    assert np.array_equal(auto, saturated | stop_mask)
+    # the beam's plateau is large, so all of it is masked; the detector defects join the union
+    assert np.array_equal(auto, saturated | stop_mask | find_detector_mask(image).mask)
+    assert np.array_equal(find_auto_mask(image, centre_xy=truth.centre_xy, saturation_value=FULL_WELL,
+                                         detector_defects=False), saturated | stop_mask)
     assert auto[leak].all()
-    coverage, false_rate = _coverage_and_false_rate(auto, truth.beam_stop_mask)
+    coverage, false_rate = _coverage_and_false_rate(saturated | stop_mask, truth.beam_stop_mask)
     assert coverage >= 0.95 and false_rate < 0.01
 
 
 def test_auto_mask_without_beam_stop_is_the_saturated_core():
     image, _ = _simulate(41)
-    auto = find_auto_mask(image, saturation_value=FULL_WELL)
+    auto = find_auto_mask(image, saturation_value=FULL_WELL, detector_defects=False)
     assert np.array_equal(auto, find_saturated_mask(image, saturation_value=FULL_WELL))
+    # a clean simulated detector: only the 2 px border is added
+    border = np.ones(image.shape, bool)
+    border[2:-2, 2:-2] = False
+    assert np.array_equal(find_auto_mask(image, saturation_value=FULL_WELL), auto | border)
 
 
 # --------------------------------------------------------------------------- #

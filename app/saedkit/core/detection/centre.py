@@ -9,7 +9,7 @@ centre of ring ellipses (:mod:`saedkit.core.detection.rings`); or set by hand.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import scipy.fft as sp_fft
@@ -25,6 +25,7 @@ __all__ = [
     "find_centre_friedel",
     "calculate_centre_from_pairs",
     "find_centre_spots",
+    "find_centre",
 ]
 
 
@@ -39,10 +40,19 @@ class CentreResult:
     sigma_x, sigma_y : float
         Standard uncertainties, pixels.
     method : str
-        How it was found: ``"friedel-correlation"``, ``"friedel-pairs"``,
-        ``"rings"`` or ``"manual"``.
+        How it was found: ``"direct-beam"``, ``"friedel-pairs"``,
+        ``"film-halo"``, ``"friedel-correlation"``, ``"brightest-region"`` (nothing
+        clearer found), ``"rings"``,
+        ``"spot-lattice"`` or ``"manual"``.
     n_used : int
         Number of pairs, rings or points behind the estimate (0 when manual).
+    confidence : float
+        How far the estimate can be trusted, 0–1 (1: a clear, precise
+        estimate, as from a fit of a visible direct beam or many Friedel
+        pairs; below 0.5: weak, check it; see :func:`find_centre`).
+    notes : tuple of str
+        What the search tried and why it chose this estimate; a weak result
+        says so here.
     """
 
     x: float
@@ -51,6 +61,8 @@ class CentreResult:
     sigma_y: float
     method: str
     n_used: int = 0
+    confidence: float = 1.0
+    notes: tuple[str, ...] = ()
 
     @property
     def xy(self) -> np.ndarray:
@@ -64,6 +76,8 @@ class CentreResult:
             "centre_sigma_px": [self.sigma_x, self.sigma_y],
             "method": self.method,
             "n_used": self.n_used,
+            "confidence": self.confidence,
+            "notes": list(self.notes),
         }
 
 
@@ -373,6 +387,12 @@ def find_centre_friedel(
     >>> bool(abs(c.x - 120.3) < 0.3 and abs(c.y - 131.6) < 0.3)
     True
     """
+    return _friedel_correlation(image, mask=mask, guess_xy=guess_xy, search_radius_px=search_radius_px)[0]
+
+
+def _friedel_correlation(image, *, mask=None, guess_xy=None, search_radius_px=None):
+    """:func:`find_centre_friedel` with the correlation at its peak (Pearson r) and its
+    prominence (robust SDs), for judging it."""
     from saedkit.core.detection.spots import _prepare
 
     img, bad, _, _ = _prepare(image, mask)
@@ -408,13 +428,14 @@ def find_centre_friedel(
     ty, tx, prom = _peak_in(ncc, m, g_local, r_local)
     if prom < _MIN_PROMINENCE:
         raise FitError(f"no clear point symmetry in the image (peak {prom:.1f} robust SD)")
+    peak_r = float(ncc[ty, tx])
     start = np.array([tx / 2.0, ty / 2.0])
     if 1 <= ty < ncc.shape[0] - 1 and 1 <= tx < ncc.shape[1] - 1:
         vert = _vertex_3x3(ncc[ty - 1 : ty + 2, tx - 1 : tx + 2])
         if vert is not None:
             start = np.array([(tx + vert[1]) / 2.0, (ty + vert[0]) / 2.0])
     cx, cy, sx, sy = _refine_symmetry(img[sub], valid[sub], start)
-    return CentreResult(cx + x0, cy + y0, sx, sy, "friedel-correlation", _SECTORS)
+    return CentreResult(cx + x0, cy + y0, sx, sy, "friedel-correlation", _SECTORS), peak_r, prom
 
 
 def calculate_centre_from_pairs(
@@ -527,7 +548,11 @@ def calculate_centre_from_pairs(
 
 
 def find_centre_spots(image, *, mask=None, guess_xy=None) -> CentreResult:
-    """The centre from the whole-image symmetry, refined by Friedel pairs of spots.
+    """The centre of a spot pattern: :func:`find_centre` with its default chain.
+
+    Kept for callers of earlier versions; it no longer raises when the
+    symmetry correlation fails, since :func:`find_centre` falls back on the
+    direct beam, the Friedel pairs of spot positions and the film halo.
 
     Parameters
     ----------
@@ -535,31 +560,460 @@ def find_centre_spots(image, *, mask=None, guess_xy=None) -> CentreResult:
     mask : (rows, cols) bool array, optional
         True for excluded pixels.
     guess_xy : [x, y], optional
-        Passed to :func:`find_centre_friedel`.
+        Where to look first.
 
     Returns
     -------
     CentreResult
-        From :func:`calculate_centre_from_pairs` on the spots found by
-        :func:`saedkit.core.detection.spots.find_spots` around the correlation centre,
-        or the correlation centre itself when fewer than 3 pairs are found.
+    """
+    return find_centre(image, mask=mask, guess_xy=guess_xy)
+
+
+# ----------------------------------------------------------------------------- the chain
+
+# Confidence at or above which an estimate is taken without trying further methods.
+_GOOD = 0.6
+# Pearson correlation of the image with its reflection below which the symmetry
+# centre is not trusted: a tilted crystal's intensities are not centrosymmetric.
+_MIN_CORRELATION = 0.35
+_PAIR_TOL_PX = 3.0  # how far from 2c − p a Friedel partner may lie
+_MAX_VOTING_SPOTS = 150  # midpoints of all pairs among at most this many spots
+_BEAM_SIGMA_FLOOR_PX = 0.03  # a direct-beam fit is not better than this (common practice)
+
+
+@dataclass(frozen=True)
+class _Estimate:
+    xy: np.ndarray
+    sigma: np.ndarray
+    method: str
+    n_used: int
+    confidence: float
+    note: str
+
+    def result(self, notes) -> CentreResult:
+        return CentreResult(
+            float(self.xy[0]), float(self.xy[1]), float(self.sigma[0]), float(self.sigma[1]),
+            self.method, int(self.n_used), float(np.clip(self.confidence, 0.0, 1.0)), tuple(notes),
+        )
+
+
+def _fit_direct_beam(img: np.ndarray, hard: np.ndarray | None, sat: np.ndarray | None,
+                     sat_level: float | None, guess_xy) -> _Estimate | None:
+    """The undiffracted beam: a saturated plateau (its centroid, with masked pixels inside
+    it filled) or an unsaturated peak (a 2-D Gaussian on a plane, least squares).
+
+    The beam is the brightest broad feature of the image (the maximum of a
+    4 px Gaussian smoothing; its tail outweighs any spot), or the brightest
+    one within 20 px of ``guess_xy``. Its confidence grows with how much it
+    outshines the brightest other peak, and is low for a peak no wider than
+    a spot.
+    """
+    from saedkit.core.detection.spots import _fit_gaussian
+
+    rows, cols = img.shape
+    work = img.astype(np.float64)
+    if sat is not None and sat_level is not None:
+        work[sat] = sat_level
+    w = np.ones(img.shape) if hard is None else (~hard).astype(np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        gw = ndi.gaussian_filter(w, 4.0, truncate=3.0)
+        sm = ndi.gaussian_filter(work * w, 4.0, truncate=3.0) / gw
+    sm[~(gw > 0.5)] = -np.inf
+    if guess_xy is not None:
+        yy, xx = np.ogrid[:rows, :cols]
+        sm = np.where(np.hypot(xx - guess_xy[0], yy - guess_xy[1]) <= 20.0, sm, -np.inf)
+    if not np.isfinite(sm).any():
+        return None
+    iy, ix = np.unravel_index(int(np.argmax(sm)), sm.shape)
+    # the brightest other peak (a spot), on a light smoothing, for the contrast
+
+    if sat is not None and sat.any():
+        lab, _ = ndi.label(sat, structure=np.ones((3, 3), bool))
+        y0, y1 = max(0, iy - 12), min(rows, iy + 13)
+        x0, x1 = max(0, ix - 12), min(cols, ix + 13)
+        ids = np.unique(lab[y0:y1, x0:x1])
+        ids = ids[ids > 0]
+        if ids.size:
+            sizes = np.bincount(lab.ravel())
+            k = int(ids[np.argmax(sizes[ids])])
+            region = lab == k
+            if hard is not None:
+                # masked pixels (a dead gap line) inside the plateau belong to it
+                near = ndi.binary_dilation(region, iterations=3) & hard
+                region = ndi.binary_fill_holes(ndi.binary_closing(region | near, iterations=2)) & (region | near)
+                region = ndi.binary_fill_holes(region)
+            n = int(region.sum())
+            if n >= 5:
+                ys, xs = np.nonzero(region)
+                cxy = np.array([xs.mean(), ys.mean()])
+                edge = region & ~ndi.binary_erosion(region)
+                n_edge = max(int(edge.sum()), 1)
+                # each edge pixel is in or out by chance: ±0.5 px on n_edge of n pixels
+                sig = max(_BEAM_SIGMA_FLOOR_PX, 0.5 * math.sqrt(n_edge) / n * math.sqrt(n / math.pi) / 2)
+                rad = math.sqrt(n / math.pi)
+                far = np.hypot(*(np.mgrid[:rows, :cols][::-1] - cxy[:, None, None])) > rad + 6
+                others = sat & far
+                second = int(np.max(np.bincount(lab[others]))) if others.any() and lab[others].any() else 0
+                conf = 0.95 if n >= 2 * max(second, 1) else 0.5
+                return _Estimate(cxy, np.array([sig, sig]), "direct-beam", n, conf,
+                                 f"direct beam: saturated plateau of {n} px at [{cxy[0]:.2f}, {cxy[1]:.2f}]")
+
+    xc, yc = float(ix), float(iy)
+    fit = None
+    for half in (6, 9):
+        x0, x1 = max(0, int(round(xc)) - half), min(cols, int(round(xc)) + half + 1)
+        y0, y1 = max(0, int(round(yc)) - half), min(rows, int(round(yc)) + half + 1)
+        yy, xx = np.mgrid[y0:y1, x0:x1]
+        ok = np.ones(xx.shape, bool) if hard is None else ~hard[y0:y1, x0:x1]
+        vals = work[y0:y1, x0:x1][ok]
+        if vals.size < 20:
+            return None
+        b0 = float(np.percentile(vals, 10))
+        start = np.array([xc, yc, max(float(vals.max()) - b0, 1.0), 2.0, b0, 0.0, 0.0])
+        fit = _fit_gaussian(xx[ok].astype(float), yy[ok].astype(float), vals, start, xc, yc)
+        if fit is None:
+            return None
+        p = fit[0]
+        if not (p[2] > 0 and 0.3 < p[3] < half and math.hypot(p[0] - xc, p[1] - yc) < half):
+            return None
+        xc, yc = float(p[0]), float(p[1])
+    p, cov, resid = fit
+    amp, width = float(p[2]), float(p[3])
+    noise = max(float(np.std(resid)), 1e-9)
+    # how far the beam outshines the brightest other feature, in flux (the 4 px
+    # smoothing integrates a spot of 1-3 px): a diffracted beam carries less
+    yy, xx = np.ogrid[:rows, :cols]
+    outside = np.hypot(xx - xc, yy - yc) > max(4 * width, 12.0)
+    flux = sm - np.median(sm[np.isfinite(sm)])
+    peaks = (sm == ndi.maximum_filter(sm, size=5)) & outside & np.isfinite(sm)
+    second = float(flux[peaks].max()) if peaks.any() else 0.0
+    top = float(flux[iy, ix])
+    dominance = top / max(second, 1e-9)
+    conf = float(np.clip(dominance - 1.0, 0.0, 1.0))
+    if width < 1.5:
+        conf *= 0.5  # as narrow as a spot: perhaps not the beam
+    if amp / noise < 10:
+        conf *= 0.5
+    sx = max(float(np.sqrt(cov[0, 0])), _BEAM_SIGMA_FLOOR_PX)
+    sy = max(float(np.sqrt(cov[1, 1])), _BEAM_SIGMA_FLOOR_PX)
+    return _Estimate(np.array([xc, yc]), np.array([sx, sy]), "direct-beam", int(resid.size), conf,
+                     f"direct beam: unsaturated peak {amp:.4g} wide {width:.2f} px at [{xc:.2f}, {yc:.2f}], "
+                     f"{dominance:.1f}x the flux of the brightest other feature")
+
+
+def _split_mask(data, mask):
+    """(float image with excluded pixels zeroed, hard mask or None, saturated pixels outside
+    the user's mask or None, saturation level): saturated pixels count as signal for the
+    beam, the rest of the mask (e.g. a doubled gap line clipped in the beam) does not."""
+    from saedkit.core.detection.spots import _check_mask, _prepare
+
+    img, bad, sat, sat_level = _prepare(data, mask)
+    user = _check_mask(mask, img.shape)
+    if sat is not None and user is not None:
+        # saturated pixels under the user's mask count only where they form a broad
+        # plateau (the beam), not a thin line (a doubled gap line clipped in the beam)
+        broad = ndi.binary_opening(sat, structure=np.ones((3, 3), bool))
+        sat = sat & ~(user & ~broad)
+        if not sat.any():
+            sat = None
+    hard = None
+    if bad is not None:
+        hard = bad if sat is None else (bad & ~sat)
+        if not hard.any():
+            hard = None
+    return img, hard, sat, sat_level
+
+
+def _direct_beam_guess(data, mask=None):
+    """[x, y] of a clearly visible direct beam (confidence >= 0.6), else None."""
+    img, hard, sat, sat_level = _split_mask(data, mask)
+    beam = _fit_direct_beam(img, hard, sat, sat_level, None)
+    return None if beam is None or beam.confidence < _GOOD else beam.xy
+
+
+def _pairs_around(xy: np.ndarray, sig: np.ndarray, guess) -> CentreResult | None:
+    try:
+        return calculate_centre_from_pairs(xy, guess_xy=guess, tolerance_px=_PAIR_TOL_PX, spots_sigma_xy=sig)
+    except FitError:
+        return None
+
+
+def _vote_pairs(xy: np.ndarray, shape) -> list[tuple[np.ndarray, int]]:
+    """Trial centres where many midpoints of spot pairs coincide, most votes first.
+
+    Every Friedel pair (g, −g) has its midpoint at the centre, whatever the
+    intensities; other pairs scatter their midpoints (on a lattice, over the
+    half-lattice points, each with fewer votes). Midpoints of all pairs are
+    counted in 1 px cells, summed over 3 × 3 cells.
+    """
+    rows, cols = shape
+    pts = xy[:_MAX_VOTING_SPOTS]
+    if len(pts) < 4:
+        return []
+    i, j = np.triu_indices(len(pts), k=1)
+    mid = (pts[i] + pts[j]) / 2
+    ok = np.hypot(*(pts[i] - pts[j]).T) > 4.0
+    mid = mid[ok]
+    hist, _, _ = np.histogram2d(mid[:, 1], mid[:, 0], bins=(rows, cols), range=((-0.5, rows - 0.5), (-0.5, cols - 0.5)))
+    votes = ndi.uniform_filter(hist, size=3, mode="constant") * 9
+    peak = (votes == ndi.maximum_filter(votes, size=7)) & (votes >= 3)
+    ys, xs = np.nonzero(peak)
+    order = np.argsort(-votes[ys, xs])[:8]
+    out = []
+    for k in order:
+        y, x = ys[k], xs[k]
+        near = (np.abs(mid[:, 0] - x) <= 1.5) & (np.abs(mid[:, 1] - y) <= 1.5)
+        if near.any():
+            out.append((mid[near].mean(axis=0), int(round(votes[y, x]))))
+    return out
+
+
+def _halo_centre(img: np.ndarray, hard: np.ndarray | None, guess) -> _Estimate | None:
+    """The centre of a broad diffuse ring (support-film halo, or rings): a circle fitted to
+    the radial maxima of the smoothed image along 72 directions from ``guess``."""
+    rows, cols = img.shape
+    w = np.ones(img.shape) if hard is None else (~hard).astype(np.float64)
+    a = ndi.median_filter(np.where(w > 0, img, 0).astype(np.float64), size=5)  # spots out
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sm = ndi.gaussian_filter(a * w, 4.0) / ndi.gaussian_filter(w, 4.0)
+    sm = np.nan_to_num(sm)
+    r_max = 0.48 * min(rows, cols)
+    radii = np.arange(10.0, r_max, 1.0)
+    ang = np.deg2rad(np.arange(0, 360, 5.0))
+    px = guess[0] + np.outer(np.cos(ang), radii)
+    py = guess[1] + np.outer(np.sin(ang), radii)
+    prof = ndi.map_coordinates(sm, [py, px], order=1, mode="nearest")
+    # a ring: a maximum along the ray that stands above both its inner and outer sides
+    k = np.argmax(prof[:, 5:-5], axis=1) + 5
+    top = prof[np.arange(len(ang)), k]
+    inner = prof[:, :5].min(axis=1)
+    outer = prof[:, -5:].mean(axis=1)
+    is_max = (k > 5) & (k < len(radii) - 6) & (top > outer * 1.05) & (top > prof[np.arange(len(ang)), np.maximum(k - 8, 0)])
+    del inner
+    if is_max.sum() < 12:
+        return None
+    x, y = px[np.arange(len(ang)), k][is_max], py[np.arange(len(ang)), k][is_max]
+    keep = np.ones(len(x), bool)
+    for _ in range(3):
+        A = np.stack([x[keep], y[keep], np.ones(keep.sum())], axis=1)
+        b = x[keep] ** 2 + y[keep] ** 2
+        sol, *_ = np.linalg.lstsq(A, b, rcond=None)
+        cx, cy = sol[0] / 2, sol[1] / 2
+        rr = math.sqrt(max(sol[2] + cx * cx + cy * cy, 0.0))
+        res = np.hypot(x - cx, y - cy) - rr
+        mad = 1.4826 * float(np.median(np.abs(res[keep]))) + 0.2
+        keep = np.abs(res) <= 3 * mad
+        if keep.sum() < 12:
+            return None
+    n = int(keep.sum())
+    sig = mad * math.sqrt(2.0 / n)
+    conf = float(np.clip(n / 72.0, 0, 1)) * (0.6 if sig < 1.0 else 0.3)
+    return _Estimate(np.array([cx, cy]), np.array([sig, sig]), "film-halo", n, conf,
+                     f"diffuse ring of radius {rr:.1f} px: circle through {n} radial maxima")
+
+
+def find_centre(
+    data,
+    *,
+    mask=None,
+    guess_xy=None,
+    spots=None,
+    use_correlation: bool = True,
+) -> CentreResult:
+    """The pattern centre by a chain of methods, each scored; never refuses a usable pattern.
+
+    Parameters
+    ----------
+    data : (rows, cols) array
+        The pattern.
+    mask : (rows, cols) bool array, optional
+        True for excluded pixels (detector gaps, beam stop, hot pixels): see
+        :func:`saedkit.core.detection.masks.find_auto_mask`. Saturated pixels
+        are recognised by themselves.
+    guess_xy : [x, y], optional
+        Where the centre roughly is (within about 20 px).
+    spots : sequence of Spot, optional
+        Spots already found (their positions are used for Friedel pairs);
+        default: found here with :func:`saedkit.core.detection.spots.find_spots`.
+    use_correlation : bool
+        Allow the (slower) whole-image symmetry correlation when the cheaper
+        methods are weak.
+
+    Returns
+    -------
+    CentreResult
+        ``method`` names the estimate chosen, ``confidence`` (0–1) how clear
+        it is, ``notes`` what was tried. A weak result (confidence below
+        0.5) is returned with a note saying so rather than raising.
 
     Raises
     ------
-    FitError
-        When :func:`find_centre_friedel` fails.
+    InputError
+        Bad image, mask or guess.
+
+    Notes
+    -----
+    In order, stopping as soon as the centre is clear:
+
+    1. **Direct beam**: the undiffracted beam is the centre by definition. A
+       saturated plateau gives its centroid (masked pixels inside it, e.g. a
+       dead gap line, filled); an unsaturated beam a least-squares 2-D
+       Gaussian on a plane. Confident when it outshines every spot.
+    2. **Friedel pairs of spot positions** (not intensities, which a tilted
+       or thick crystal makes unequal for g and −g): around the beam, pairs
+       matched both ways with outliers dropped
+       (:func:`calculate_centre_from_pairs`); without a beam, the midpoints
+       of all pairs of spots are voted on a 1 px grid first (a hot pixel or
+       an unpaired spot adds scattered votes only). When three or more pairs
+       agree with the beam within 2 px the pairs' mean midpoint is taken
+       (method ``"friedel-pairs"``).
+    3. **Support-film halo or rings**: a circle through the radial maxima of
+       the smoothed, spot-free image.
+    4. **Symmetry correlation** (:func:`find_centre_friedel`), trusted only
+       when the image correlates with its point reflection with r ≥ 0.35 (a
+       tilted pattern's intensities are not centrosymmetric) and its
+       refinement converges.
+
+    Estimates that agree within 2 px support each other; the most confident
+    one wins, then the Friedel pairs around it refine it.
+
+    Examples
+    --------
+    >>> from saedkit.core.simulation.render import render_pattern
+    >>> img, truth = render_pattern((256, 256), (120.3, 131.6),
+    ...     spot_offsets_xy=[[40, 0], [-40, 0], [0, 45], [0, -45], [40, 45], [-40, -45]],
+    ...     spot_intensity=3000, rng=np.random.default_rng(0))
+    >>> c = find_centre(img)
+    >>> bool(abs(c.x - 120.3) < 0.3 and abs(c.y - 131.6) < 0.3), c.method
+    (True, 'friedel-pairs')
     """
     from saedkit.core.detection.spots import find_spots
 
-    coarse = find_centre_friedel(image, mask=mask, guess_xy=guess_xy)
-    spots = find_spots(image, mask=mask, centre_xy=coarse.xy)
-    if len(spots) < 6:
-        return coarse
-    xy = np.array([[s.x, s.y] for s in spots])
-    sig = np.array([[max(s.sigma_x, 1e-3), max(s.sigma_y, 1e-3)] for s in spots])
-    tol = max(3.0, 6.0 * max(coarse.sigma_x, coarse.sigma_y))
-    try:
-        pairs = calculate_centre_from_pairs(xy, guess_xy=coarse.xy, tolerance_px=tol, spots_sigma_xy=sig)
-    except FitError:
-        return coarse
-    return pairs if pairs.n_used >= 3 else coarse
+    img, hard, sat, sat_level = _split_mask(data, mask)
+    g = None if guess_xy is None else check_xy("guess_xy", guess_xy)
+    notes: list[str] = []
+    estimates: list[_Estimate] = []
+
+    def spot_arrays(centre_xy):
+        # centroids: enough for pair midpoints, and much cheaper than Gaussian fits
+        found = spots if spots is not None else find_spots(data, mask=mask, centre_xy=centre_xy, refine="centroid")
+        good = list(found)
+        xy = np.array([[s.x, s.y] for s in good], float).reshape(-1, 2)
+        sig = np.array([[max(s.sigma_x, 1e-3), max(s.sigma_y, 1e-3)] for s in good], float).reshape(-1, 2)
+        sig = np.where(np.isfinite(sig), sig, 1.0)
+        return xy, sig
+
+    def refine_with_pairs(anchor: _Estimate, xy, sig) -> CentreResult:
+        pr = _pairs_around(xy, sig, anchor.xy) if len(xy) >= 4 else None
+        if pr is not None and pr.n_used >= 3 and math.hypot(pr.x - anchor.xy[0], pr.y - anchor.xy[1]) <= 2.0:
+            conf = max(anchor.confidence, min(1.0, 0.5 + 0.1 * pr.n_used))
+            notes.append(f"{pr.n_used} Friedel pairs of spot positions agree with it; their mean midpoint taken")
+            return CentreResult(pr.x, pr.y, pr.sigma_x, pr.sigma_y, "friedel-pairs", pr.n_used, conf, tuple(notes))
+        if pr is not None and pr.n_used >= 3:
+            notes.append(f"{pr.n_used} Friedel pairs point {math.hypot(pr.x - anchor.xy[0], pr.y - anchor.xy[1]):.1f} px "
+                         "away; not used")
+        else:
+            notes.append("fewer than 3 Friedel pairs of spots around it")
+        return anchor.result(notes)
+
+    # 1. the direct beam
+    beam = _fit_direct_beam(img, hard, sat, sat_level, g)
+    if beam is not None:
+        notes.append(beam.note + f" (confidence {beam.confidence:.2f})")
+        estimates.append(beam)
+        if beam.confidence >= _GOOD:
+            xy, sig = spot_arrays(beam.xy)
+            return refine_with_pairs(beam, xy, sig)
+    else:
+        notes.append("no direct beam visible")
+
+    # 2. Friedel pairs of spot positions, by voting
+    xy, sig = spot_arrays(None if beam is None else beam.xy)
+    if beam is not None and beam.confidence >= 0.3:
+        # a faint beam still tells which of a periodic net's meeting points is the centre
+        pr = _pairs_around(xy, sig, beam.xy) if len(xy) >= 4 else None
+        if pr is not None and pr.n_used >= 3 and math.hypot(*(pr.xy - beam.xy)) <= 2.0:
+            estimates.append(_Estimate(pr.xy, np.array([pr.sigma_x, pr.sigma_y]), "friedel-pairs", pr.n_used,
+                                       float(np.clip(0.3 + 2 * pr.n_used / max(len(xy), 1), 0, 0.9))
+                                       * (0.5 + 0.5 * beam.confidence),
+                                       f"{pr.n_used} Friedel pairs of spot positions around the beam"))
+    votes = _vote_pairs(xy, img.shape)
+    if g is not None:
+        votes = [v for v in votes if math.hypot(*(v[0] - g)) <= 20.0]
+    for vxy, n in votes[:3]:
+        pr = _pairs_around(xy, sig, vxy)
+        if pr is not None and any(e.method == "friedel-pairs" and np.hypot(*(e.xy - pr.xy)) <= 2.0 for e in estimates):
+            continue  # the same meeting point again
+        if pr is not None and pr.n_used >= 3:
+            frac = 2 * pr.n_used / max(len(xy), 1)
+            estimates.append(_Estimate(pr.xy, np.array([pr.sigma_x, pr.sigma_y]), "friedel-pairs", pr.n_used,
+                                       float(np.clip(0.3 + frac, 0, 0.9)),
+                                       f"{pr.n_used} Friedel pairs of spot positions meet at "
+                                       f"[{pr.x:.2f}, {pr.y:.2f}] ({n} votes)"))
+    if len(votes) >= 2 and votes[1][1] >= 0.8 * votes[0][1]:
+        notes.append(f"pair votes ambiguous ({votes[0][1]} and {votes[1][1]}): a periodic net")
+        for k, e in enumerate(estimates):
+            if e.method == "friedel-pairs" and "votes" in e.note:
+                estimates[k] = replace(e, confidence=e.confidence * 0.6)
+
+    def best_supported():
+        if not estimates:
+            return None
+        scored = []
+        for e in estimates:
+            support = sum(o.confidence for o in estimates if o is not e and np.hypot(*(o.xy - e.xy)) <= 2.0)
+            scored.append((e.confidence + 0.5 * support, e))
+        scored.sort(key=lambda t: -t[0])
+        return scored[0]
+
+    top = best_supported()
+    if top is not None and top[0] >= _GOOD + 0.2:
+        notes.append(top[1].note)
+        return refine_with_pairs(top[1], xy, sig) if top[1].method != "friedel-pairs" else top[1].result(notes)
+
+    # 3. the film halo or rings
+    anchor = g if g is not None else (top[1].xy if top is not None else np.array([(img.shape[1] - 1) / 2, (img.shape[0] - 1) / 2]))
+    halo = _halo_centre(img, hard, anchor)
+    if halo is not None:
+        estimates.append(halo)
+        notes.append(halo.note + f" (confidence {halo.confidence:.2f})")
+
+    # 4. the symmetry correlation, judged by its quality
+    top = best_supported()
+    if use_correlation and (top is None or top[0] < _GOOD + 0.2):
+        try:
+            kw = {} if g is None else {"guess_xy": g, "search_radius_px": 20.0}
+            corr, r_peak, prom = _friedel_correlation(data, mask=mask, **kw)
+        except FitError as exc:
+            notes.append(f"symmetry correlation failed: {exc}")
+        else:
+            trusted = r_peak >= _MIN_CORRELATION
+            # a clear point symmetry beats a periodic net's ambiguous pair votes
+            conf = float(np.clip(0.4 + r_peak, 0, 1)) if trusted else 0.4 * max(r_peak, 0.0)
+            estimates.append(_Estimate(corr.xy, np.array([corr.sigma_x, corr.sigma_y]), "friedel-correlation",
+                                       corr.n_used, conf, f"symmetry correlation r = {r_peak:.2f} "
+                                       f"({prom:.0f} robust SD) at [{corr.x:.2f}, {corr.y:.2f}]"
+                                       + ("" if trusted else ": intensities not centrosymmetric, not trusted")))
+            notes.append(estimates[-1].note)
+    top = best_supported()
+    if top is None:
+        # nothing clear at all: the brightest region of the heavily smoothed image
+        w = np.ones(img.shape) if hard is None else (~hard).astype(np.float64)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            heavy = ndi.gaussian_filter(img.astype(np.float64) * w, 8.0) / ndi.gaussian_filter(w, 8.0)
+        heavy = np.where(np.isfinite(heavy), heavy, -np.inf)
+        iy, ix = np.unravel_index(int(np.argmax(heavy)), heavy.shape)
+        estimates.append(_Estimate(np.array([float(ix), float(iy)]), np.array([8.0, 8.0]), "brightest-region", 0,
+                                   0.05, "no direct beam, Friedel pairs, ring or point symmetry: the brightest "
+                                   "region of the smoothed image"))
+        notes.append(estimates[-1].note)
+        top = best_supported()
+    chosen = top[1]
+    if chosen.method != "friedel-pairs":
+        res = refine_with_pairs(chosen, xy, sig)
+    else:
+        res = chosen.result(notes)
+    if res.confidence < 0.5:
+        res = CentreResult(res.x, res.y, res.sigma_x, res.sigma_y, res.method, res.n_used, res.confidence,
+                           res.notes + ("weak: every method is uncertain here; check the centre or set it by hand",))
+    return res

@@ -21,7 +21,9 @@ from saedkit.core._validate import check_finite, check_image_2d, check_xy
 from saedkit.core.errors import InputError
 
 __all__ = [
+    "DetectorMask",
     "find_auto_mask",
+    "find_detector_mask",
     "find_beam_stop_mask",
     "find_saturated_mask",
     "mask_disc",
@@ -237,7 +239,7 @@ def find_beam_stop_mask(data, *, centre_xy=None, grow_px: float = 3) -> np.ndarr
 
     for sigma in _SMOOTH_SIGMAS_PX:  # more smoothing only if a noisy image needs it
         found = _find_stop(work, sigma, cx, cy)
-        if found is not None:
+        if found is not None and found.mean() <= _MAX_AREA_FRACTION:
             return _grow(_block_expand(found, factor, (rows, cols)), grow)
     return np.zeros((rows, cols), dtype=bool)
 
@@ -521,12 +523,212 @@ def _shape_of(xs: np.ndarray, ys: np.ndarray) -> tuple[float, float]:
 
 
 # --------------------------------------------------------------------------- #
-# Both
+# Detector defects
 # --------------------------------------------------------------------------- #
 
+# Line search: a column (row) is compared with a running median across columns
+# (rows) of this width, which a gap of up to 4 lines cannot move.
+_LINE_MEDIAN_WIDTH = 11
+_LINE_BLOCKS = 16  # each half of a line is judged in blocks along its length
+_LINE_HIGH, _LINE_LOW = 1.5, 0.55  # block ratio to the neighbours that makes a line odd
+_LINE_MIN_FRACTION = 0.6  # "most of its length": this fraction of the blocks of a half
+# Hot pixel: this many robust noise SDs above its 3x3 median, with every neighbour
+# below this fraction of its excess (a spot, even a 1-px one, spreads into them)
+_HOT_SIGMAS = 12.0
+_HOT_NEIGHBOUR_FRACTION = 0.2
+_DEAD_MIN_LEVEL = 20.0  # a 0 among neighbours this bright is dead (Poisson P(0) < 3e-9)
 
-def find_auto_mask(data, *, centre_xy=None, saturation_value: float | None = None) -> np.ndarray:
-    """Mask the saturated pixels and the beam stop.
+
+@dataclass(frozen=True)
+class DetectorMask:
+    """What :func:`find_detector_mask` found.
+
+    Parameters
+    ----------
+    mask : (rows, cols) bool array
+        True at every defective pixel found (and the border).
+    line_columns, line_rows : tuple of int
+        Columns and rows found to be gap or dead lines (along at least one
+        half of their length).
+    n_hot, n_dead : int
+        Isolated hot and dead pixels found.
+    border_px : int
+        Width of the image border masked.
+    """
+
+    mask: np.ndarray
+    line_columns: tuple[int, ...]
+    line_rows: tuple[int, ...]
+    n_hot: int
+    n_dead: int
+    border_px: int
+
+    def to_dict(self) -> dict:
+        """JSON-ready summary (without the mask itself)."""
+        return {
+            "line_columns": list(self.line_columns),
+            "line_rows": list(self.line_rows),
+            "n_hot": self.n_hot,
+            "n_dead": self.n_dead,
+            "border_px": self.border_px,
+            "n_masked": int(self.mask.sum()),
+        }
+
+
+def _odd_lines(a: np.ndarray) -> np.ndarray:
+    """(2, cols) bool: column j is odd over the top (0) or bottom (1) half of the rows.
+
+    The image is summed in blocks of rows (so low counts still give a stable
+    ratio); each column's block sum is compared with the running median of
+    the block sums of ``_LINE_MEDIAN_WIDTH`` columns around it; a half is odd
+    when most of its blocks are much brighter or much darker than the
+    neighbours.
+    """
+    rows, cols = a.shape
+    out = np.zeros((2, cols), bool)
+    halves = ((0, rows // 2), (rows // 2, rows))
+    for h, (r0, r1) in enumerate(halves):
+        n_blocks = max(1, min(_LINE_BLOCKS // 2, (r1 - r0) // 8))
+        bh = (r1 - r0) // n_blocks
+        blocks = np.sort(a[r0 : r0 + bh * n_blocks].reshape(n_blocks, bh, a.shape[1]), axis=1)
+        # the lower three quarters of each block's column: spots in a column (a net
+        # aligned with the detector) do not make it a bright line
+        keep = max(1, int(0.75 * bh))
+        num = blocks[:, :keep, :].sum(axis=1)
+        den = ndi.median_filter(num, size=(1, _LINE_MEDIAN_WIDTH), mode="nearest")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = num / den
+        # a block with no signal around it says nothing, unless the line itself is bright
+        counts = keep
+        informative = (den >= 4.0 * counts) | (num >= 4.0 * counts)
+        odd = informative & ((ratio > _LINE_HIGH) | (ratio < _LINE_LOW))
+        n_inf = informative.sum(axis=0)
+        out[h] = (n_inf >= max(2, n_blocks // 2)) & (odd.sum(axis=0) >= _LINE_MIN_FRACTION * np.maximum(n_inf, 1))
+    return out
+
+
+def find_detector_mask(data, *, border_px: int = 2) -> DetectorMask:
+    """Find the defects of a pixel detector: gap and dead lines, hot and dead pixels.
+
+    Parameters
+    ----------
+    data : (rows, cols) array
+        The image.
+    border_px : int
+        Width of the image border to exclude (edge pixels of a chip are often
+        larger or less sensitive; a spot cut by the edge cannot be measured).
+
+    Returns
+    -------
+    DetectorMask
+        The mask (True = excluded) and what was found.
+
+    Raises
+    ------
+    InputError
+        If ``data`` is not a 2-D real image or ``border_px`` is negative.
+
+    Notes
+    -----
+    - **Lines** (the gap cross of a multi-chip hybrid-pixel detector, whose
+      larger pixels read about twice the signal or nothing, and dead rows or
+      columns): the image is summed in blocks of rows (the lower three
+      quarters of each column's values, so spots in a column do not count)
+      and each column's block sum compared with the running median of the 11 columns around it; it is odd where most blocks of
+      one half of the image (one chip) read more than 1.5 times or less
+      than 0.55 times their neighbours. Rows likewise.
+    - **Hot pixels**: more than 12 robust noise standard deviations above the
+      median of their 3 × 3 neighbourhood while every neighbour stays below a
+      fifth of that excess (a diffraction spot, even a one-pixel one blurred by
+      the detector, spreads into its neighbours; a hot pixel does not).
+    - **Dead pixels**: 0 where the 3 × 3 median is at least 20 counts
+      (Poisson probability of a 0 below 3 × 10⁻⁹).
+    - The outer ``border_px`` rows and columns.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> img = np.random.default_rng(0).poisson(50, (128, 128)).astype(float)
+    >>> img[:, 64:66] *= 2.5  # a doubled gap
+    >>> img[10, 20] = 4095    # a hot pixel
+    >>> found = find_detector_mask(img)
+    >>> found.line_columns, found.n_hot
+    ((64, 65), 1)
+    """
+    arr = check_image_2d("data", data)
+    if arr.dtype.kind not in "uifb":
+        raise InputError(f"data must be a real image, got dtype {arr.dtype}")
+    if isinstance(border_px, bool) or not isinstance(border_px, (int, np.integer)) or border_px < 0:
+        raise InputError(f"border_px must be an integer >= 0, got {border_px!r}")
+    a = np.asarray(arr, dtype=np.float64)
+    finite = np.isfinite(a)
+    if not finite.all():
+        a = np.where(finite, a, 0.0)
+    rows, cols = a.shape
+    mask = ~finite
+    if rows < 16 or cols < 16:
+        raise InputError(f"data must be at least 16 x 16 pixels, got shape {arr.shape}")
+
+    odd_cols = _odd_lines(a)
+    odd_rows = _odd_lines(a.T)
+    half_r, half_c = rows // 2, cols // 2
+    line_mask = np.zeros(a.shape, bool)
+    line_mask[:half_r, odd_cols[0]] = True
+    line_mask[half_r:, odd_cols[1]] = True
+    line_mask[odd_rows[0], :half_c] = True
+    line_mask[odd_rows[1], half_c:] = True
+    mask |= line_mask
+
+    # isolated pixels, judged with the lines left out of the neighbourhoods
+    med = ndi.median_filter(a, size=3, mode="nearest")
+    resid = np.where(line_mask, 0.0, a - med)
+    f = 32
+    pr, pc = (-rows) % f, (-cols) % f
+    padded = np.pad(np.abs(resid), ((0, pr), (0, pc)), mode="reflect")
+    blocks = padded.reshape(padded.shape[0] // f, f, padded.shape[1] // f, f)
+    noise_b = 1.4826 * np.median(blocks, axis=(1, 3))
+    noise = np.repeat(np.repeat(noise_b, f, axis=0), f, axis=1)[:rows, :cols]
+    noise = np.maximum(noise, np.sqrt(np.maximum(med, 0.0)) * 0.5 + 0.5)  # counts at least Poisson-like
+    ring = np.ones((3, 3), bool)
+    ring[1, 1] = False
+    nb = ndi.maximum_filter(resid, footprint=ring, mode="nearest")
+    hot = (resid > _HOT_SIGMAS * noise) & (nb < _HOT_NEIGHBOUR_FRACTION * resid) & ~line_mask
+    dead = (a == 0) & (med >= _DEAD_MIN_LEVEL) & ~line_mask
+    mask |= hot | dead
+    if border_px:
+        b = int(border_px)
+        mask[:b, :] = mask[-b:, :] = True
+        mask[:, :b] = mask[:, -b:] = True
+    lc = tuple(int(j) for j in np.flatnonzero(odd_cols.any(axis=0)))
+    lr = tuple(int(i) for i in np.flatnonzero(odd_rows.any(axis=0)))
+    return DetectorMask(mask, lc, lr, int(hot.sum()), int(dead.sum()), int(border_px))
+
+
+# --------------------------------------------------------------------------- #
+# All of them
+# --------------------------------------------------------------------------- #
+
+#: A saturated region smaller than this (pixels) is a saturated spot, which the
+#: automatic mask leaves for the spot finder to keep and flag; the beam's plateau
+#: and its bloom are larger (common practice).
+MIN_MASKED_SATURATION_PX = 40
+
+
+def _large_saturation(saturated: np.ndarray) -> np.ndarray:
+    """The saturated regions of at least ``MIN_MASKED_SATURATION_PX`` pixels."""
+    if not saturated.any():
+        return saturated
+    labels, n = ndi.label(saturated, structure=np.ones((3, 3), bool))
+    sizes = np.bincount(labels.ravel(), minlength=n + 1)
+    big = sizes >= MIN_MASKED_SATURATION_PX
+    big[0] = False
+    return big[labels]
+
+
+def find_auto_mask(
+    data, *, centre_xy=None, saturation_value: float | None = None, detector_defects: bool = True
+) -> np.ndarray:
+    """Mask the saturated beam, the beam stop and the detector's defects.
 
     Parameters
     ----------
@@ -536,16 +738,39 @@ def find_auto_mask(data, *, centre_xy=None, saturation_value: float | None = Non
         Pattern centre or a guess, for the beam-stop search.
     saturation_value : float, optional
         Detector saturation value (see :func:`find_saturated_mask`).
+    detector_defects : bool
+        Include :func:`find_detector_mask` (gap and dead lines, hot and dead
+        pixels, the border).
 
     Returns
     -------
     (rows, cols) bool array
-        The union of :func:`find_saturated_mask` and
-        :func:`find_beam_stop_mask` with their default growth.
+        The union of the large regions of :func:`find_saturated_mask` (at
+        least ``MIN_MASKED_SATURATION_PX`` pixels, grown: the beam and its
+        bloom; saturated spots are left to the spot finder, which keeps them
+        for their positions and flags them), :func:`find_beam_stop_mask` and
+        :func:`find_detector_mask`, with their default settings.
     """
-    return find_saturated_mask(data, saturation_value=saturation_value) | find_beam_stop_mask(
-        data, centre_xy=centre_xy
-    )
+    out = _large_saturation(find_saturated_mask(data, saturation_value=saturation_value))
+    if not detector_defects:
+        return out | find_beam_stop_mask(data, centre_xy=centre_xy)
+    arr = check_image_2d("data", data)
+    defects = find_detector_mask(arr).mask
+    # the beam-stop search sees the defects filled from their nearest good pixels, so a
+    # dead gap line (a dark bar from edge to edge) is not taken for a beam stop
+    inner = defects.copy()
+    inner[[0, -1], :] = inner[:, [0, -1]] = False
+    filled = arr
+    if inner.any() and not inner.all():
+        idx = ndi.distance_transform_edt(inner, return_distances=False, return_indices=True)
+        filled = arr[idx[0], idx[1]]
+    if centre_xy is None:
+        # a visible direct beam is the centre the beam-stop search needs (its own guess,
+        # the brightest region, can be pulled aside by a film halo)
+        from saedkit.core.detection.centre import _direct_beam_guess
+
+        centre_xy = _direct_beam_guess(arr, defects)
+    return out | find_beam_stop_mask(filled, centre_xy=centre_xy) | defects
 
 
 # --------------------------------------------------------------------------- #

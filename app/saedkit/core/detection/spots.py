@@ -123,6 +123,10 @@ class Spot:
     method : str
         ``"gaussian"`` (least-squares fit) or ``"centroid"`` (the fit failed or
         was not asked for).
+    saturated : bool
+        Some of the spot's central pixels are saturated: its position comes
+        from the unsaturated wings and is sound, its ``peak`` is extrapolated
+        by the fit and its ``intensity`` is a lower bound.
     """
 
     x: float
@@ -136,6 +140,7 @@ class Spot:
     snr: float
     width_px: float
     method: str = "gaussian"
+    saturated: bool = False
 
     @property
     def xy(self) -> np.ndarray:
@@ -159,7 +164,9 @@ class Spot:
             "snr": self.snr,
             "width_px": self.width_px,
         }
-        return {k: (float(v) if np.isfinite(v) else None) for k, v in rec.items()}
+        out = {k: (float(v) if np.isfinite(v) else None) for k, v in rec.items()}
+        out["saturated"] = bool(self.saturated)
+        return out
 
 
 def spots_xy_array(spots: Sequence[Spot]) -> np.ndarray:
@@ -868,6 +875,7 @@ class _Candidates:
     ys: np.ndarray
     z: np.ndarray  # significance R / sigma_R
     edge: np.ndarray  # the Gaussian footprint touches excluded pixels
+    noise: "_NoiseModel | None" = None  # the noise model they were found with
 
 
 def _subpixel_offset(m: np.ndarray, c: np.ndarray, p: np.ndarray) -> np.ndarray:
@@ -918,8 +926,10 @@ def _find_candidates(
     separation: float,
     centre_xy: np.ndarray | None,
     exclude_radius: float,
+    allowed: np.ndarray | None = None,
 ) -> _Candidates:
     rows, cols = resp.shape
+    reject = bad if allowed is None or bad is None else (bad & ~allowed)
     bmin = float(back.grid.min())
     thr0 = z_min * noise.sigma_min(bmin)
     empty = _Candidates(*(np.zeros(0, int),) * 2, *(np.zeros(0),) * 3, np.zeros(0, bool))
@@ -951,8 +961,8 @@ def _find_candidates(
         by, bx, val = by[is_max], bx[is_max], val[is_max]
         sig = noise.sigma_at(by, bx, back.at(by, bx)) * _border_factor(k, by, rows) * _border_factor(k, bx, cols)
         sel = val >= z_min * sig
-        if bad is not None:
-            sel &= ~bad[by, bx]
+        if reject is not None:
+            sel &= ~reject[by, bx]
         if sel.any():
             parts.append((by[sel], bx[sel], val[sel], sig[sel]))
     if not parts:
@@ -1015,8 +1025,11 @@ def _detect(
     exclude_radius: float,
     beam: tuple[float, float, float] | None = None,
     should_stop: StopFn | None = None,
+    allowed: np.ndarray | None = None,
 ) -> _Candidates:
-    """Filter, measure the noise, and find the candidates (steps 1–5 of the module notes)."""
+    """Filter, measure the noise, and find the candidates (steps 1–5 of the module notes).
+
+    ``allowed``: excluded pixels on which a candidate may still sit (saturated ones)."""
     resp, back, near = _response(img, bad, k, beam)
     _check_stop(should_stop)
     samples = _take_samples(img, bad, resp, back, k)
@@ -1024,17 +1037,18 @@ def _detect(
     def run(nm):
         return _find_candidates(
             img, resp, back, near, bad, k, nm, z_min=z_min, separation=separation,
-            centre_xy=centre_xy, exclude_radius=exclude_radius,
+            centre_xy=centre_xy, exclude_radius=exclude_radius, allowed=allowed,
         )
 
     # pass 1: everything visible (a 5-sigma detection, even below min_snr) with the
     # white-noise prediction; pass 2: the noise (and κ) measured away from it
     first = _find_candidates(
         img, resp, back, near, bad, k, _measure_noise(samples, k, with_kappa=False),
-        z_min=_MIN_SIGNIFICANCE, separation=separation, centre_xy=None, exclude_radius=0.0,
+        z_min=_MIN_SIGNIFICANCE, separation=separation, centre_xy=None, exclude_radius=0.0, allowed=allowed,
     )
     xy = np.stack([first.xs, first.ys], axis=1)
-    return run(_measure_noise(samples, k, xy, first.z))
+    nm = _measure_noise(samples, k, xy, first.z)
+    return replace(run(nm), noise=nm)
 
 
 # ----------------------------------------------------------------------------- central beam
@@ -1554,6 +1568,10 @@ def find_spots(
             raise InputError(f"exclude_radius_px must be a finite number >= 0, got {exclude_radius_px!r}")
     img, bad, sat, sat_level = _prepare(image, mask)
     _check_stop(should_stop)
+    # saturated pixels the user's mask covers (a doubled gap line clipped in the beam)
+    # are no place for a spot
+    user = _check_mask(mask, img.shape)
+    sat_free = sat if sat is None or user is None else sat & ~user
 
     s = spot_sigma_px if spot_sigma_px is not None else _estimate_sigma(img, bad, sat, sat_level, c)
     _check_stop(should_stop)
@@ -1573,9 +1591,16 @@ def find_spots(
     sep = min_separation_px if min_separation_px is not None else max(3.0, 3.0 * s)
     cands = _detect(
         img, bad, k, z_min=z_min, separation=sep, centre_xy=c_found, exclude_radius=excl,
-        beam=beam, should_stop=should_stop,
+        beam=beam, should_stop=should_stop, allowed=sat_free,
     )
     _check_stop(should_stop)
+    # pixels where no spot may be: the mask (saturated pixels are excluded from the
+    # fits but may hold a spot, which is kept and flagged)
+    hard = bad if sat_free is None or bad is None else (bad & ~sat_free)
+    if c is not None:
+        excl = max(excl, 3.0 * s)  # the given centre is the direct beam, never a spot
+    edge_px = max(2.0, 2.0 * s)
+    rows, cols = img.shape
 
     limit = min(len(cands.x), max(2 * max_spots, max_spots + 50))
     ref = _Refiner(img, bad, s, refine)
@@ -1585,16 +1610,124 @@ def find_spots(
         if i % 16 == 0:
             _check_stop(should_stop)
         sp = ref.refine(float(cands.xs[i]), float(cands.ys[i]))
-        if sp is not None and (bad is None or not _is_bad(bad, sp.x, sp.y)):
+        if sp is not None and (hard is None or not _is_bad(hard, sp.x, sp.y)):
+            if cands.noise is not None:
+                # the peak over the noise model measured on the whole image (Poisson plus
+                # read noise against the local background), steadier than an annulus MAD
+                iy = np.array([min(max(int(round(sp.y)), 0), rows - 1)])
+                ix = np.array([min(max(int(round(sp.x)), 0), cols - 1)])
+                px_sigma = float(cands.noise.pixel_sigma_at(iy, ix, np.array([sp.background]))[0])
+                if px_sigma > 0:
+                    sp = replace(sp, snr=float(sp.peak / px_sigma))
             # a centroid (no Gaussian fit) must still show the detection limit at the
             # refined position, and is not trusted where the mask cuts the spot
-            if sp.method == "gaussian" or (sp.snr >= z_min * se and not cands.edge[i]):
+            keep = sp.method == "gaussian" or (sp.snr >= z_min * se and not cands.edge[i])
+            # listed spots pass min_snr by the measure that is reported
+            keep = keep and sp.snr >= min_snr
+            # never at the image edge nor in the direct beam's core and tail
+            keep = keep and edge_px <= sp.x <= cols - 1 - edge_px and edge_px <= sp.y <= rows - 1 - edge_px
+            if keep and c_found is not None and excl > 0:
+                keep = math.hypot(sp.x - c_found[0], sp.y - c_found[1]) > excl
+            if keep and not _touches(sat_free, sp.x, sp.y, 2.0 * sp.width_px) and _elongation(img, bad, sp, s) > _MAX_ELONGATION:
+                keep = False  # a maximum along a line (Kikuchi line, streak), not a spot
+            if keep and sp.width_px > _MAX_WIDTH_RATIO * s and not _touches(sat, sp.x, sp.y, 2.0 * sp.width_px):
+                keep = False  # far wider than the pattern's spots: a diffuse patch, not a spot
+            if keep:
+                if _touches(sat_free, sp.x, sp.y, max(1.5, 2.0 * sp.width_px)):
+                    sp = replace(sp, saturated=True)
                 spots.append(sp)
         if progress is not None and ((i + 1) % step == 0 or i + 1 == limit):
             progress(i + 1, limit)
     spots = _dedupe(spots, sep)
     spots.sort(key=lambda sp: -sp.intensity)
     return tuple(spots[:max_spots])
+
+
+# The largest ratio of the principal second moments of a spot's light (above its
+# local background and noise, within 4 sigma): a round spot gives about 1; the
+# maximum of a Kikuchi line or streak, which runs through the whole window, 3 or more.
+_MAX_ELONGATION = 3.0
+# A spot's fitted width may be at most this times the pattern's spot width (every
+# spot is an image of the same beam convergence and point-spread: common practice).
+_MAX_WIDTH_RATIO = 2.2
+
+
+def _elongation(img: np.ndarray, bad: np.ndarray | None, sp: Spot, s: float) -> float:
+    """Ratio of the larger to the smaller principal second moment of the light of ``sp``.
+
+    The light is what stands more than 3 noise SDs and a quarter of the spot's
+    height above its local background after a 1 px Gaussian smoothing (so a
+    faint line under a bright spot does not join it), in the connected region around the spot's pixel within a disc
+    of radius max(5, 4 s) (so isolated noise pixels do not count); each moment
+    carries the 1/12 px² of a pixel's own extent. A region no longer than
+    2 s along its major axis counts as round (1.0): a faint spot is a few pixels.
+    Light that runs on to the edge of the disc (a line, a crossing of two lines)
+    gives infinity.
+    """
+    rows, cols = img.shape
+    rad = max(5.0, 4.0 * s)
+    x0, x1 = max(0, int(sp.x - rad)), min(cols, int(sp.x + rad) + 2)
+    y0, y1 = max(0, int(sp.y - rad)), min(rows, int(sp.y + rad) + 2)
+    yy, xx = np.mgrid[y0:y1, x0:x1]
+    dx, dy = xx - sp.x, yy - sp.y
+    inside = dx * dx + dy * dy <= rad * rad
+    if bad is not None:
+        inside &= ~bad[y0:y1, x0:x1]
+    raw = img[y0:y1, x0:x1].astype(float)
+    rr = np.hypot(dx, dy)
+    ring = inside & (rr >= rad - 2.0)
+    if ring.sum() < 8:
+        return 1.0
+    # the local background as a plane through the rim (a line crossing it is clipped)
+    plane, _ = _annulus_plane(dx[ring], dy[ring], raw[ring])
+    noise = sp.peak / sp.snr if sp.snr > 0 else 0.0  # the rim's own scatter includes the lines
+    win = raw - (plane[0] + plane[1] * dx + plane[2] * dy)
+    if bad is not None:
+        win = np.where(bad[y0:y1, x0:x1], 0.0, win)
+    # smoothed by a 1 px Gaussian, which keeps white noise at 1/(2√π) of its SD:
+    # a faint line then stays connected along its length
+    smooth = ndi.gaussian_filter(win, 1.0, mode="nearest")
+    iy, ix = int(round(sp.y)) - y0, int(round(sp.x)) - x0
+    if not (0 <= iy < win.shape[0] and 0 <= ix < win.shape[1]):
+        return 1.0
+    # the light: above 3 noise SDs of the smoothed image and above a quarter of the
+    # spot's own height, so a faint line under a bright spot does not join it
+    level = max(3.0 * noise / (2.0 * math.sqrt(math.pi)), 0.25 * float(smooth[iy, ix]))
+    excess = smooth - level
+    above = (excess > 0) & inside
+    lab, _ = ndi.label(above)
+    if lab[iy, ix] == 0:
+        return 1.0
+    region = lab == lab[iy, ix]
+    if (rr[region] > rad - 1.5).any():
+        return float("inf")  # the light runs on out of the window: a line, a crossing of lines
+    w = np.where(region, excess, 0.0)
+    tot = float(w.sum())
+    mx, my = float((w * dx).sum() / tot), float((w * dy).sum() / tot)
+    ex, ey = dx - mx, dy - my
+    cxx = float((w * ex * ex).sum() / tot) + 1 / 12
+    cyy = float((w * ey * ey).sum() / tot) + 1 / 12
+    cxy = float((w * ex * ey).sum() / tot)
+    tr, det = cxx + cyy, cxx * cyy - cxy * cxy
+    disc = math.sqrt(max(tr * tr / 4 - det, 0.0))
+    lo, hi = tr / 2 - disc, tr / 2 + disc
+    if math.sqrt(hi) <= 2.0 * s:
+        return 1.0
+    return float(hi / max(lo, 1 / 12))
+
+
+def _touches(mask: np.ndarray | None, x: float, y: float, radius: float) -> bool:
+    """True when a pixel of ``mask`` lies within ``radius`` of (x, y)."""
+    if mask is None:
+        return False
+    rows, cols = mask.shape
+    x0, x1 = max(0, int(x - radius)), min(cols, int(x + radius) + 2)
+    y0, y1 = max(0, int(y - radius)), min(rows, int(y + radius) + 2)
+    if x0 >= x1 or y0 >= y1:
+        return False
+    yy, xx = np.mgrid[y0:y1, x0:x1]
+    near = (xx - x) ** 2 + (yy - y) ** 2 <= radius * radius
+    return bool((mask[y0:y1, x0:x1] & near).any())
 
 
 def _is_bad(bad: np.ndarray, x: float, y: float) -> bool:

@@ -18,7 +18,15 @@ from saedkit.core._validate import check_positive, check_xy
 from saedkit.core.distortion import NO_DISTORTION, Ellipse
 from saedkit.core.errors import InputError
 
-__all__ = ["BeamStop", "Detector", "RenderTruth", "render_pattern"]
+__all__ = [
+    "BeamStop",
+    "ChipGaps",
+    "Detector",
+    "FilmHalo",
+    "KikuchiBand",
+    "RenderTruth",
+    "render_pattern",
+]
 
 
 @dataclass(frozen=True)
@@ -53,6 +61,93 @@ class BeamStop:
         bar = (along >= 0) & (across <= half)
         tip = np.hypot(xx - cx, yy - cy) <= half + self.tip_overhang_px
         return bar | tip
+
+
+@dataclass(frozen=True)
+class FilmHalo:
+    """The diffuse ring of an amorphous support film (carbon, SiN).
+
+    Parameters
+    ----------
+    radius_px : float
+        Radius of the halo's maximum, pixels (about 1/(2.1 Å) for carbon, from memory).
+    width_px : float
+        Gaussian sigma of the halo's radial profile, pixels (broad: a few tens of pixels).
+    intensity : float
+        Height of the halo above the rest of the background, counts.
+    """
+
+    radius_px: float = 120.0
+    width_px: float = 25.0
+    intensity: float = 400.0
+
+
+@dataclass(frozen=True)
+class KikuchiBand:
+    """A straight Kikuchi-like band: a bright line pair (excess/deficit lines drawn bright).
+
+    Parameters
+    ----------
+    angle_deg : float
+        Direction of the band's normal, degrees from +x towards +y.
+    distance_px : float
+        Distance of the band's middle from the pattern centre along its normal.
+    width_px : float
+        Distance between the band's two edge lines, pixels.
+    line_sigma_px : float
+        Gaussian sigma across each edge line, pixels.
+    intensity : float
+        Peak height of each edge line, counts.
+    """
+
+    angle_deg: float = 30.0
+    distance_px: float = 40.0
+    width_px: float = 30.0
+    line_sigma_px: float = 1.2
+    intensity: float = 60.0
+
+
+@dataclass(frozen=True)
+class ChipGaps:
+    """The gap cross of a 2 × 2 hybrid-pixel detector, and its stray pixels.
+
+    Parameters
+    ----------
+    split_xy : [x, y], optional
+        Column and row where the chips meet (default: the image middle).
+    gap_px : int
+        Width of each gap line, pixels.
+    mode : {"doubled", "dead"}
+        ``"doubled"``: the larger gap pixels collect ``gain`` times the signal
+        of an ordinary pixel; ``"dead"``: they read 0.
+    gain : float
+        Signal factor of a doubled gap pixel.
+    hot_pixels : int
+        Number of isolated hot pixels at random places, reading ``hot_value``.
+    hot_value : float, optional
+        Value of a hot pixel (default: the detector's full well).
+    dead_pixels : int
+        Number of isolated dead pixels (reading 0).
+    """
+
+    split_xy: tuple[float, float] | None = None
+    gap_px: int = 2
+    mode: str = "doubled"
+    gain: float = 2.5
+    hot_pixels: int = 0
+    hot_value: float | None = None
+    dead_pixels: int = 0
+
+    def gap_mask(self, shape: tuple[int, int]) -> np.ndarray:
+        """Boolean (rows, cols) array, True on the gap lines."""
+        rows, cols = shape
+        sx, sy = (cols / 2, rows / 2) if self.split_xy is None else self.split_xy
+        g = int(self.gap_px)
+        out = np.zeros(shape, bool)
+        c0, r0 = int(round(sx - g / 2)), int(round(sy - g / 2))
+        out[:, max(c0, 0) : max(c0 + g, 0)] = True
+        out[max(r0, 0) : max(r0 + g, 0), :] = True
+        return out
 
 
 @dataclass(frozen=True)
@@ -92,6 +187,10 @@ class RenderTruth:
     ring_radius_px: np.ndarray = field(repr=False)  # (M,) ideal radii (mean of semi-axes)
     spot_sigma_px: float = 1.5
     beam_stop_mask: np.ndarray | None = field(default=None, repr=False)
+    gap_mask: np.ndarray | None = field(default=None, repr=False)  # chip-gap lines
+    hot_xy: np.ndarray | None = field(default=None, repr=False)  # (H, 2) hot pixels
+    dead_xy: np.ndarray | None = field(default=None, repr=False)  # (D, 2) dead pixels
+    saturated_spots: np.ndarray | None = field(default=None, repr=False)  # (N,) bool
 
 
 def render_pattern(
@@ -112,6 +211,11 @@ def render_pattern(
     beam_stop: BeamStop | None = None,
     detector: Detector = Detector(),
     rng: np.random.Generator | None = None,
+    film_halo: FilmHalo | None = None,
+    kikuchi_bands=(),
+    psf_tail_fraction: float = 0.0,
+    psf_tail_scale_px: float = 3.0,
+    chip_gaps: ChipGaps | None = None,
 ) -> tuple[np.ndarray, RenderTruth]:
     """Draw a diffraction image with known geometry.
 
@@ -145,6 +249,18 @@ def render_pattern(
         Dose, noise, pedestal, saturation and pixel type.
     rng : numpy.random.Generator, optional
         Noise source; without one the image is noiseless.
+    film_halo : FilmHalo, optional
+        Diffuse ring of an amorphous support film.
+    kikuchi_bands : sequence of KikuchiBand
+        Straight bright line pairs crossing the pattern.
+    psf_tail_fraction, psf_tail_scale_px : float
+        Fraction of every pixel's signal spread into a long-tailed
+        point-spread function ``(1 + (r/a)²)^(-3/2)`` of scale ``a`` (the
+        tail of a hybrid-pixel or scintillator detector); 0 = none.
+    chip_gaps : ChipGaps, optional
+        Gap cross of a 2 × 2 chip detector (doubled or dead lines), hot and
+        dead pixels; applied after the noise, before saturation.
+        For a 12-bit counter use ``Detector(full_well=4095)``.
 
     Returns
     -------
@@ -179,6 +295,14 @@ def render_pattern(
             band = np.abs(r_ideal - rad) < 6 * ring_width_px
             model[band] += h * np.exp(-((r_ideal[band] - rad) ** 2) / (2 * ring_width_px**2))
 
+    if film_halo is not None:
+        model += film_halo.intensity * np.exp(-((r - film_halo.radius_px) ** 2) / (2 * film_halo.width_px**2))
+    for band in kikuchi_bands:
+        nx, ny = np.cos(np.deg2rad(band.angle_deg)), np.sin(np.deg2rad(band.angle_deg))
+        along_normal = dx * nx + dy * ny - band.distance_px
+        for edge in (-band.width_px / 2, band.width_px / 2):
+            model += band.intensity * np.exp(-((along_normal - edge) ** 2) / (2 * band.line_sigma_px**2))
+
     offsets = np.zeros((0, 2)) if spot_offsets_xy is None else np.asarray(spot_offsets_xy, float)
     offsets = offsets.reshape(-1, 2)
     peaks = np.broadcast_to(
@@ -195,6 +319,20 @@ def render_pattern(
         gy = np.exp(-((np.arange(y0, y1) - sy) ** 2) / (2 * spot_sigma_px**2))
         model[y0:y1, x0:x1] += h * np.outer(gy, gx)
 
+    if psf_tail_fraction > 0:
+        if not 0 < psf_tail_fraction < 1:
+            raise InputError(f"psf_tail_fraction must be in [0, 1), got {psf_tail_fraction!r}")
+        a = check_positive("psf_tail_scale_px", psf_tail_scale_px)
+        from scipy.signal import fftconvolve
+
+        ky, kx = np.indices((2 * rows - 1, 2 * cols - 1), dtype=np.float64)
+        kr = np.hypot(kx - (cols - 1), ky - (rows - 1))
+        kern = (1 + (kr / a) ** 2) ** -1.5
+        kern /= kern.sum()
+        spread = fftconvolve(model, kern, mode="valid")
+        model = (1 - psf_tail_fraction) * model + psf_tail_fraction * spread
+        peaks = peaks * (1 - psf_tail_fraction)  # the spot's core keeps this much of its peak
+
     stop_mask = None
     if beam_stop is not None:
         stop_mask = beam_stop.mask_array((rows, cols), c)
@@ -207,6 +345,25 @@ def render_pattern(
     else:
         counts = model.copy()
     counts += detector.offset
+    gap = hot_xy = dead_xy = None
+    if chip_gaps is not None:
+        if chip_gaps.mode not in ("doubled", "dead"):
+            raise InputError(f"chip_gaps.mode must be 'doubled' or 'dead', got {chip_gaps.mode!r}")
+        gap = chip_gaps.gap_mask((rows, cols))
+        if chip_gaps.mode == "dead":
+            counts[gap] = 0.0
+        else:
+            counts[gap] = (counts[gap] - detector.offset) * chip_gaps.gain + detector.offset
+        pick = rng if rng is not None else np.random.default_rng(0)
+        n_hot, n_dead = int(chip_gaps.hot_pixels), int(chip_gaps.dead_pixels)
+        free = np.flatnonzero(~gap.ravel())
+        where = pick.choice(free, size=n_hot + n_dead, replace=False)
+        hy, hx = np.divmod(where, cols)
+        hot_value = detector.full_well if chip_gaps.hot_value is None else chip_gaps.hot_value
+        counts[hy[:n_hot], hx[:n_hot]] = hot_value
+        counts[hy[n_hot:], hx[n_hot:]] = 0.0
+        hot_xy = np.stack([hx[:n_hot], hy[:n_hot]], axis=1).astype(float)
+        dead_xy = np.stack([hx[n_hot:], hy[n_hot:]], axis=1).astype(float)
     counts = np.clip(counts, 0, detector.full_well)
 
     # noise at each spot: Poisson on (background + spot) and read noise
@@ -231,5 +388,9 @@ def render_pattern(
         ring_radius_px=radii,
         spot_sigma_px=spot_sigma_px,
         beam_stop_mask=stop_mask,
+        gap_mask=gap,
+        hot_xy=hot_xy,
+        dead_xy=dead_xy,
+        saturated_spots=(counts[iy, ix] >= detector.full_well) if len(spot_xy) else np.zeros(0, bool),
     )
     return image, truth

@@ -172,12 +172,13 @@ def prepare_mask(image, mask: np.ndarray | None = None) -> np.ndarray:
 
 
 def locate_centre(image, mask: np.ndarray, *, centre_xy=None, centre_sigma_px: float = 0.5) -> CentreResult:
-    """The pattern centre from the Friedel symmetry of the spots, or the known ``centre_xy``."""
-    from saedkit.core.detection.centre import find_centre_spots, manual_centre
+    """The pattern centre from the chain of methods of :func:`~saedkit.core.detection.centre.find_centre`
+    (direct beam, Friedel pairs of spots, rings or halo, symmetry correlation), or the known ``centre_xy``."""
+    from saedkit.core.detection.centre import find_centre, manual_centre
 
     if centre_xy is not None:
         return manual_centre(float(centre_xy[0]), float(centre_xy[1]), sigma_px=centre_sigma_px)
-    return find_centre_spots(image.data, mask=mask)
+    return find_centre(image.data, mask=mask)
 
 
 def detect_spots(image, mask: np.ndarray, centre: CentreResult, *, options: PipelineOptions = DEFAULT_OPTIONS,
@@ -189,13 +190,13 @@ def detect_spots(image, mask: np.ndarray, centre: CentreResult, *, options: Pipe
                             max_spots=options.max_spots, should_stop=should_stop))
 
 
-def detect_rings(image, mask: np.ndarray, *, options: PipelineOptions = DEFAULT_OPTIONS,
+def detect_rings(image, mask: np.ndarray, *, options: PipelineOptions = DEFAULT_OPTIONS, centre_guess_xy=None,
                  progress: Progress | None = None, should_stop: Stop | None = None):
-    """Rings, centre and ellipse of a ring pattern (RingFit)."""
+    """Rings, centre and ellipse of a ring pattern (RingFit); ``centre_guess_xy`` starts the fit."""
     from saedkit.core.detection.rings import find_rings
 
     return find_rings(image.data, mask=mask, min_snr=options.ring_min_snr, fit_ellipse=options.fit_ellipse,
-                      progress=progress, should_stop=should_stop)
+                      centre_guess_xy=centre_guess_xy, progress=progress, should_stop=should_stop)
 
 
 def subtract_rings(data: np.ndarray, centre_xy, ellipse, *, mask: np.ndarray | None = None,
