@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from saedkit.core.errors import FitError, InputError
-from saedkit.core.ring_points import calculate_circle_through_points
+from saedkit.core.detection.ring_points import calculate_circle_through_points
 
 
 def test_circle_through_three_points_is_exact():

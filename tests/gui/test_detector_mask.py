@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from saedkit.core.detector_mask import (
+from saedkit.core.detection.detector_mask import (
     detector_mask_path,
     find_detector_mask,
     read_detector_mask,

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from saedkit.core.display import DisplaySettings, calculate_display_image
+from saedkit.core.presentation.display import DisplaySettings, calculate_display_image
 from saedkit.report.figures import calculate_display_array
 
 

@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from saedkit.core.label_layout import boxes_overlap, place_labels, ring_label_places
+from saedkit.core.presentation.label_layout import boxes_overlap, place_labels, ring_label_places
 
 A_AU = 4.0782  # Å, gold lattice parameter (REFERENCES.md)
 DENSE = [(4, 0, 0), (3, 3, 1), (4, 2, 0), (4, 2, 2)]

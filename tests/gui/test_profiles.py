@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy.ndimage import map_coordinates
 
-from saedkit.core.profiles import calculate_azimuthal_profile, calculate_line_profile
+from saedkit.core.detection.profiles import calculate_azimuthal_profile, calculate_line_profile
 
 
 def _image():

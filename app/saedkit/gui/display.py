@@ -1,4 +1,4 @@
-"""The display mapping, as the window imports it: it lives in :mod:`saedkit.core.display`, shared with the report."""
+"""The display mapping, as the window imports it: it lives in :mod:`saedkit.core.presentation.display`, shared with the report."""
 
-from saedkit.core.display import *  # noqa: F401,F403
-from saedkit.core.display import __all__, _pool  # noqa: F401
+from saedkit.core.presentation.display import *  # noqa: F401,F403
+from saedkit.core.presentation.display import __all__, _pool  # noqa: F401

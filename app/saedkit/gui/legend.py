@@ -6,7 +6,7 @@ from PySide6.QtCore import QPointF, QRectF, Qt
 from PySide6.QtGui import QColor, QFont, QFontMetricsF, QPainter, QPen, QPolygonF
 from PySide6.QtWidgets import QWidget
 
-from saedkit.core.marker_style import MARKER_COLOURS, MARKER_LEGEND
+from saedkit.core.presentation.marker_style import MARKER_COLOURS, MARKER_LEGEND
 
 __all__ = ["MarkerLegend"]
 

@@ -988,7 +988,7 @@ class MainWindow(QMainWindow):
         self._start_auto_mask(session, then=then, keep_phases=keep_phases)
 
     def _start_auto_mask(self, session: Session, *, then=None, keep_phases=()) -> None:
-        from saedkit.core.detector_mask import find_detector_mask
+        from saedkit.core.detection.detector_mask import find_detector_mask
 
         data = session.image.data
         sat = session.image.saturation_value
@@ -1190,7 +1190,7 @@ class MainWindow(QMainWindow):
 
     def show_line_profile(self, a_xy, b_xy) -> None:
         """The intensity along the line from ``a_xy`` to ``b_xy`` (spots on it marked), in the Profile panel."""
-        from saedkit.core.profiles import calculate_line_profile
+        from saedkit.core.detection.profiles import calculate_line_profile
 
         s = self._require()
         prof = calculate_line_profile(s.image.data, a_xy, b_xy, mask=s.mask,
@@ -1205,7 +1205,7 @@ class MainWindow(QMainWindow):
 
     def show_azimuthal_profile(self, xy) -> None:
         """The intensity round the ring through ``xy`` (about the centre, with the calibration's distortion)."""
-        from saedkit.core.profiles import calculate_azimuthal_profile
+        from saedkit.core.detection.profiles import calculate_azimuthal_profile
 
         s = self._require()
         if s.centre is None:
@@ -1355,7 +1355,7 @@ class MainWindow(QMainWindow):
         """Save the current mask as the detector mask of a camera (asks its name): reused for its patterns."""
         from PySide6.QtWidgets import QInputDialog
 
-        from saedkit.core.detector_mask import detector_mask_path, write_detector_mask
+        from saedkit.core.detection.detector_mask import detector_mask_path, write_detector_mask
 
         s = self._require()
         if not s.mask.any():

@@ -27,7 +27,7 @@ from PySide6.QtCore import QPointF, QRectF, Qt
 from PySide6.QtGui import QBrush, QColor, QFont, QFontMetricsF, QImage, QPainter, QPainterPath, QPen, QPolygonF, QTransform
 from PySide6.QtWidgets import QGraphicsItem
 
-from saedkit.core.marker_style import MARKER_COLOURS
+from saedkit.core.presentation.marker_style import MARKER_COLOURS
 
 __all__ = [
     "COLOURS",
@@ -407,7 +407,7 @@ class RingLayer(_ScreenLayer):
 
     def _place_labels(self, painter, t, bounds: QRectF) -> list:
         """Non-overlapping places of the ring labels in device pixels (inner rings first); None: left out."""
-        from saedkit.core.label_layout import place_labels, ring_label_places
+        from saedkit.core.presentation.label_layout import place_labels, ring_label_places
 
         cx, cy = self.centre_xy
         c_dev = map_points(t, np.array([[cx, cy]]))[0]

@@ -143,7 +143,7 @@ class ProfilePlot(QWidget):
         p.setPen(QPen(QColor("#56606b"), 1))
         p.drawRect(plot)
         # ring markers, with (hkl) labels in up to three rows above the plot, never overlapping (left out if crowded)
-        from saedkit.core.label_layout import place_labels
+        from saedkit.core.presentation.label_layout import place_labels
 
         places = []
         for r, hkl, _ in self.rings:
@@ -254,7 +254,7 @@ class CurvePlot(QWidget):
             p.end()
 
     def _paint(self, p: QPainter) -> None:
-        from saedkit.core.label_layout import place_labels
+        from saedkit.core.presentation.label_layout import place_labels
 
         p.setRenderHint(QPainter.RenderHint.Antialiasing, True)
         p.fillRect(self.rect(), QColor("#1b2027"))

@@ -172,7 +172,7 @@ class CentreTool(Tool):
         if n < 3:
             self.ctx.show_status(f"Ring point {n} of 3: Shift+click {3 - n} more on the same ring.")
             return
-        from saedkit.core.ring_points import calculate_circle_through_points
+        from saedkit.core.detection.ring_points import calculate_circle_through_points
 
         pts, self.ring_points = self.ring_points, []
         self.view.stroke_layer.set_state(polygon=np.zeros((0, 2)))

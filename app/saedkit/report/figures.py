@@ -33,7 +33,7 @@ import numpy as np
 from saedkit.core._atomic import write_with_atomic
 from saedkit.core.distortion import NO_DISTORTION, Ellipse
 from saedkit.core.errors import InputError
-from saedkit.core.marker_style import MARKER_COLOURS
+from saedkit.core.presentation.marker_style import MARKER_COLOURS
 from saedkit.report._common import (
     describe_unindexed,
     finite,
@@ -77,7 +77,7 @@ FIGURE_DPI = 100
 #: Long side of the figure in pixels when ``size_px`` is not given: the image's, within these limits.
 _DEFAULT_SIZE_LIMITS_PX = (800, 1600)
 
-# Colours of saedkit's overlays, the same as on screen (core/marker_style.py): the report shows what the user saw
+# Colours of saedkit's overlays, the same as on screen (core/presentation/marker_style.py): the report shows what the user saw
 COLOURS = {
     "spot": MARKER_COLOURS["spot_auto"],  # measured spots
     "grid": MARKER_COLOURS["predicted"],  # predicted reflections
@@ -123,7 +123,7 @@ def _block_reduce(a: np.ndarray, f: int, func) -> np.ndarray:
 
 def calculate_display_array(data, mask=None, *, display: str = "log", max_side_px: int | None = None,
                             gamma: float = 0.5, settings=None) -> np.ndarray:
-    """Grey levels 0–1 of a pattern for display: the screen's own mapping (:mod:`saedkit.core.display`).
+    """Grey levels 0–1 of a pattern for display: the screen's own mapping (:mod:`saedkit.core.presentation.display`).
 
     Parameters
     ----------
@@ -135,14 +135,14 @@ def calculate_display_array(data, mask=None, *, display: str = "log", max_side_p
         percentile); ignored when ``settings`` is given.
     max_side_px : int, optional
         Block-average the levels down to at most about this size.
-    settings : saedkit.core.display.DisplaySettings, optional
+    settings : saedkit.core.presentation.display.DisplaySettings, optional
         The display the user chose on screen (curve, gamma, limits).
 
     Returns
     -------
     (rows', cols') float32 array in [0, 1]
     """
-    from saedkit.core.display import DisplaySettings, calculate_display_fraction
+    from saedkit.core.presentation.display import DisplaySettings, calculate_display_fraction
 
     if settings is None:
         if display not in DISPLAY_MODES:
@@ -160,7 +160,7 @@ def _shown_display(analysis):
     d = (getattr(analysis, "parameters", None) or {}).get("display")
     if not isinstance(d, dict):
         return None
-    from saedkit.core.display import DisplaySettings
+    from saedkit.core.presentation.display import DisplaySettings
 
     try:
         return DisplaySettings.from_dict(d)
@@ -174,7 +174,7 @@ def _colour_map(settings):
         return "gray"
     from matplotlib.colors import ListedColormap
 
-    from saedkit.core.display import calculate_colour_table
+    from saedkit.core.presentation.display import calculate_colour_table
 
     table = calculate_colour_table(settings.colour_map, invert=settings.invert)
     rgb = np.array([[(v >> 16) & 255, (v >> 8) & 255, v & 255] for v in table], float) / 255.0
