@@ -51,7 +51,7 @@ from saedkit.gui import settings as app_prefs
 from saedkit.gui.dialogs import NewPhaseDialog, NoticeBar, PreferencesDialog, SaveCalibrationDialog, show_details
 from saedkit.gui.display import DisplaySettings, calculate_colour_table, calculate_display_image
 from saedkit.gui.icons import icon
-from saedkit.gui.panels import fmt_sigma
+from saedkit.gui.panels import fmt_pm, fmt_sigma
 from saedkit.gui.panels import CalibrationPanel, DisplayPanel, MeasurementsPanel, PhasesPanel, RingPhasesPanel, SearchPanel
 from saedkit.gui.tools import TOOL_CLASSES, describe_pair
 from saedkit.gui.view import LAYER_NAMES, PatternView, calculate_argb_image
@@ -1564,10 +1564,11 @@ class MainWindow(QMainWindow):
                 if standard != s.settings.standard:
                     s.set_settings(standard=standard)
                 s.set_calibration(cal, use_centre=True)
-            rel = getattr(cal, "camera_constant_rel_sigma", None)
-            msg = f"Camera constant K = {cal.camera_constant_px_A:.2f} px·Å"
-            if rel is not None:
-                msg += f" (± {100 * rel:.2g} %)"
+            from saedkit.core.calibration.camera import camera_terms
+
+            t = camera_terms(cal)
+            msg = (f"Camera constant K = {fmt_pm(t.camera_constant_px_A, t.total_sigma_px_A, 2)} px·Å "
+                   f"(fit {fmt_sigma(t.stat_sigma_px_A)}, reproducibility {t.reproducibility_pct:.2g} %)")
             warnings = list(getattr(cal, "warnings", ()) or ())
             self.notify(msg + "." + ("".join(f"\n⚠ {w}" for w in warnings)), "warning" if warnings else "success")
             self.docks["calibration"].raise_()

@@ -27,7 +27,7 @@ from saedkit.core.crystallography.crystal import format_indices
 from saedkit.gui.icons import icon
 from saedkit.gui.plot import AXES as PLOT_AXES, ProfilePlot
 
-from saedkit.gui.panels._common import INDICES_ROLE, IndicesDelegate, _Panel, _signed, _spin, fmt_pm
+from saedkit.gui.panels._common import INDICES_ROLE, IndicesDelegate, _Panel, _signed, _spin, fmt_pm, fmt_sigma
 
 
 class CalibrationPanel(_Panel):
@@ -206,12 +206,12 @@ class CalibrationPanel(_Panel):
             self.table.setRowCount(0)
             self._show_profile(None, ring_fit)
             return
-        k = float(cal.camera_constant_px_A)
-        sk = getattr(cal, "camera_constant_sigma_px_A", None)
-        rel = getattr(cal, "camera_constant_rel_sigma", None)
-        if rel is None and sk is not None and k:
-            rel = sk / k
-        lines = [f"<b>K = {fmt_pm(k, sk, 2)} px·Å</b>" + (f" ({100 * rel:.2g} %)" if rel is not None else "")]
+        from saedkit.core.calibration.camera import camera_terms
+
+        t = camera_terms(cal)  # one reader of K and its σ (statistical, reproducibility, total)
+        k, total = t.camera_constant_px_A, t.total_sigma_px_A
+        lines = [f"<b>K = {fmt_pm(k, total, 2)} px·Å</b>" + (f" ({100 * total / k:.2g} %)" if k else ""),
+                 f"fit {fmt_sigma(t.stat_sigma_px_A)} px·Å, reproducibility {t.reproducibility_pct:.2g} %"]
         source = type(cal).__name__
         name = getattr(cal, "name", None)
         if source == "EnteredCalibration":
@@ -235,7 +235,7 @@ class CalibrationPanel(_Panel):
             lines.append(f"<span style='color:#e0a030'>⚠ {w}</span>")
         self.result.setText("<br>".join(lines))
         # enough decimals for two significant figures of σ (never "± 0.00")
-        sig = float(sk or 0.0)
+        sig = float(t.stat_sigma_px_A or 0.0)  # the known-K fields take the statistical part; the reproducibility is its own term
         dec = min(max(2, 1 - int(math.floor(math.log10(sig)))), 6) if sig > 0 else 2
         self.k_sigma.setDecimals(dec)
         self.k_value.setDecimals(dec)
