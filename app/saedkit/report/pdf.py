@@ -241,11 +241,11 @@ def _page_pattern(page: _Page, analysis) -> None:
         y += 0.16
 
 
-_TABLE_COLUMNS = [
-    ("", 0.42, "left"), ("#", 0.3, "right"), ("x (px)", 0.55, "right"), ("y (px)", 0.55, "right"),
-    ("R (px)", 0.85, "right"), ("d ± σ (Å)", 1.05, "right"), ("σ stat, sys", 0.8, "right"),
-    ("|g| (nm⁻¹)", 0.65, "right"), ("(hkl)", 0.7, "center"),
-    ("intensity", 0.6, "right"), ("SNR", 0.4, "right"), ("Δd (%)", 0.5, "right"),
+_TABLE_COLUMNS = [  # widths (inches) add up to the 6.87 in between the A4 margins
+    ("", 0.32, "left"), ("#", 0.25, "right"), ("x (px)", 0.5, "right"), ("y (px)", 0.5, "right"),
+    ("R (px)", 0.88, "right"), ("d ± σ (Å)", 0.9, "right"), ("σ stat, sys", 0.88, "right"),
+    ("|g| (nm⁻¹)", 0.66, "right"), ("(hkl)", 0.55, "center"),
+    ("intensity", 0.55, "right"), ("SNR", 0.38, "right"), ("Δd (%)", 0.45, "right"),
 ]
 
 
@@ -292,7 +292,7 @@ def _page_table(page: _Page, analysis, rows: list[list[str]], part: int, parts: 
                 page.text(_MARGIN_IN, y, line, fontsize=7.5, color=_GREY)
                 y += 0.17
         y += 0.15
-    _table(page, y, _TABLE_COLUMNS, rows)
+    _table(page, y, _TABLE_COLUMNS, rows, fontsize=7.0)
 
 
 def _page_calibration(page: _Page, analysis) -> None:
