@@ -159,7 +159,12 @@ class MeasurementsPanel(_Panel):
             ktxt = "no camera constant: spacings need a calibration"
         ctxt = "no centre" if s.centre is None else f"centre ({s.centre.x:.2f}, {s.centre.y:.2f}) ± " \
             f"({fmt_sigma(s.centre.sigma_x)}, {fmt_sigma(s.centre.sigma_y)}) px, {s.centre.method}"
-        self.summary.setText(f"{len(rows)} spots · {ctxt} · {ktxt}")
+        conf = getattr(s.centre, "confidence", 1.0) if s.centre is not None else 1.0
+        if conf < 0.5:  # the centre chain flags a weak centre instead of refusing: say so where the numbers are
+            ctxt += f" (weak: confidence {conf:.2f}; check it or set it by hand)"
+        n_sat = sum(bool(getattr(sp, "saturated", False)) for sp in s.spots)
+        sat = f" ({n_sat} saturated: positions kept, intensities are lower bounds)" if n_sat else ""
+        self.summary.setText(f"{len(rows)} spots{sat} · {ctxt} · {ktxt}")
 
     def _selection(self, *_: Any) -> None:
         rows = self.view.selectionModel().selectedRows()
