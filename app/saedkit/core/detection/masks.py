@@ -27,6 +27,7 @@ __all__ = [
     "find_beam_stop_mask",
     "find_saturated_mask",
     "mask_disc",
+    "draw_disc",
     "mask_polygon",
     "mask_rectangle",
 ]
@@ -811,14 +812,21 @@ def mask_disc(mask, centre_xy, radius_px: float, *, value: bool = True) -> np.nd
     if radius < 0:
         raise InputError(f"radius_px must be >= 0, got {radius_px!r}")
     out = arr.copy()
-    rows, cols = arr.shape
+    draw_disc(out, (cx, cy), radius, value=value)
+    return out
+
+
+def draw_disc(mask: np.ndarray, centre_xy, radius_px: float, *, value: bool = True) -> None:
+    """Set the pixels of a bool ``mask`` within a disc to ``value``, in place (many discs, one copy)."""
+    cx, cy = float(centre_xy[0]), float(centre_xy[1])
+    radius = float(radius_px)
+    rows, cols = mask.shape
     y0, y1 = max(int(math.floor(cy - radius)), 0), min(int(math.ceil(cy + radius)) + 1, rows)
     x0, x1 = max(int(math.floor(cx - radius)), 0), min(int(math.ceil(cx + radius)) + 1, cols)
     if y0 < y1 and x0 < x1:
         yy, xx = np.ogrid[y0:y1, x0:x1]
         inside = (xx - cx) ** 2 + (yy - cy) ** 2 <= radius**2
-        out[y0:y1, x0:x1][inside] = bool(value)
-    return out
+        mask[y0:y1, x0:x1][inside] = bool(value)
 
 
 def mask_polygon(mask, vertices_xy, *, value: bool = True) -> np.ndarray:

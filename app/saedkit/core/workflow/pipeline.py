@@ -245,13 +245,13 @@ def _mask_strong_spots(image, mask: np.ndarray, options: PipelineOptions) -> np.
     A few strong spots of the specimen on one radius (e.g. the four {200} of a cubic [001] grain) would
     otherwise read as a ring of the standard and pull its assignment to another K.
     """
-    from saedkit.core.detection.masks import mask_disc
+    from saedkit.core.detection.masks import draw_disc
     from saedkit.core.detection.spots import find_spots
 
     strong = find_spots(image.data, mask=mask, min_snr=max(4.0 * options.min_snr, 20.0), max_spots=400)
-    out = np.asarray(mask, bool).copy()
+    out = np.array(mask, bool)
     for sp in strong:
-        out = mask_disc(out, (sp.x, sp.y), max(4.0 * float(sp.width_px), 5.0))
+        draw_disc(out, (sp.x, sp.y), max(4.0 * float(sp.width_px), 5.0))
     return out
 
 
