@@ -34,6 +34,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from saedkit.core.errors import InputError, SaedkitError
+from saedkit.core.workflow.pipeline import DEFAULT_OPTIONS
 
 __all__ = ["SeriesOptions", "FrameResult", "analyse_frames", "calculate_series_mask", "calculate_rotation_period_deg",
            "calculate_virtual_detector_sums", "FRAME_FIELDS"]
@@ -73,11 +74,11 @@ class SeriesOptions:
     camera_constant_px_A: float | None = None
     camera_constant_sigma_px_A: float | None = None
     voltage_kv: float = 200.0
-    min_snr: float = 5.0
-    d_tolerance_pct: float = 2.5
-    angle_tolerance_deg: float = 2.0
-    max_index: int = 10
-    top: int = 3
+    min_snr: float = DEFAULT_OPTIONS.min_snr  # the pipeline's defaults, held once in PipelineOptions
+    d_tolerance_pct: float = DEFAULT_OPTIONS.d_tolerance_pct
+    angle_tolerance_deg: float = DEFAULT_OPTIONS.angle_tolerance_deg
+    max_index: int = DEFAULT_OPTIONS.max_index
+    top: int = 3  # a series keeps fewer candidates per frame than a single analysis
     drift_tolerance_px: float = 1.5
     bright_field_radius_px: float = 6.0
     dark_field_radii_px: tuple[float, float] = (12.0, 40.0)
