@@ -33,7 +33,34 @@ def _nice_ticks(lo: float, hi: float, n: int = 6) -> list[float]:
     return out
 
 
-class ProfilePlot(QWidget):
+class _DarkPlot(QWidget):
+    """What the plots share: painting on the dark face in the small font, and a message when empty."""
+
+    def paintEvent(self, event) -> None:  # noqa: N802
+        p = QPainter(self)
+        try:
+            self._paint(p)
+        finally:
+            p.end()
+
+    def _paint(self, p: QPainter) -> None:
+        raise NotImplementedError
+
+    def _start(self, p: QPainter) -> QFontMetricsF:
+        p.setRenderHint(QPainter.RenderHint.Antialiasing, True)
+        p.fillRect(self.rect(), QColor("#1b2027"))
+        font = QFont()
+        font.setPointSizeF(7.5)
+        p.setFont(font)
+        return QFontMetricsF(font)
+
+    def _say(self, p: QPainter, message: str) -> None:
+        w, h = self.width(), self.height()
+        p.setPen(QColor("#9aa7b4"))
+        p.drawText(QRectF(8, 8, w - 16, h - 16), Qt.AlignmentFlag.AlignCenter | Qt.TextFlag.TextWordWrap, message)
+
+
+class ProfilePlot(_DarkPlot):
     """Intensity against radius (log scale), ring positions with (hkl), residual bars underneath.
 
     Call :meth:`set_data` with the profile and the rings; ``rings`` is a list
@@ -98,25 +125,11 @@ class ProfilePlot(QWidget):
     def clear(self, message: str = "") -> None:
         self.set_data([], [], [], message=message or "No radial profile yet: fit the rings of a calibration pattern.")
 
-    def paintEvent(self, event) -> None:  # noqa: N802
-        p = QPainter(self)
-        try:
-            self._paint(p)
-        finally:
-            p.end()
-
     def _paint(self, p: QPainter) -> None:
-        p.setRenderHint(QPainter.RenderHint.Antialiasing, True)
-        p.fillRect(self.rect(), QColor("#1b2027"))
-        font = QFont()
-        font.setPointSizeF(7.5)
-        p.setFont(font)
-        fm = QFontMetricsF(font)
+        fm = self._start(p)
         w, h = self.width(), self.height()
         if self.radius.size < 2:
-            p.setPen(QColor("#9aa7b4"))
-            p.drawText(QRectF(8, 8, w - 16, h - 16), Qt.AlignmentFlag.AlignCenter | Qt.TextFlag.TextWordWrap,
-                       self.message)
+            self._say(p, self.message)
             return
         has_res = any(r[2] is not None and math.isfinite(r[2]) for r in self.rings)
         left, right, top = 40.0, 8.0, 30.0
@@ -216,7 +229,7 @@ class ProfilePlot(QWidget):
         p.drawText(QPointF(2, mid + fm.ascent() / 2), f"±{top_pct:.2g}%")
 
 
-class CurvePlot(QWidget):
+class CurvePlot(_DarkPlot):
     """A plain curve (a line or an azimuthal profile) with marked positions (the spots on the line).
 
     Call :meth:`set_curve` with x, y (NaN gaps allowed), the axis name, and
@@ -246,28 +259,14 @@ class CurvePlot(QWidget):
         self.marks = [(float(a), str(t)) for a, t in marks]
         self.update()
 
-    def paintEvent(self, event) -> None:  # noqa: N802
-        p = QPainter(self)
-        try:
-            self._paint(p)
-        finally:
-            p.end()
-
     def _paint(self, p: QPainter) -> None:
         from saedkit.core.presentation.label_layout import place_labels
 
-        p.setRenderHint(QPainter.RenderHint.Antialiasing, True)
-        p.fillRect(self.rect(), QColor("#1b2027"))
-        font = QFont()
-        font.setPointSizeF(7.5)
-        p.setFont(font)
-        fm = QFontMetricsF(font)
+        fm = self._start(p)
         w, h = self.width(), self.height()
         ok = np.isfinite(self.x) & np.isfinite(self.y)
         if ok.sum() < 2:
-            p.setPen(QColor("#9aa7b4"))
-            p.drawText(QRectF(8, 8, w - 16, h - 16), Qt.AlignmentFlag.AlignCenter | Qt.TextFlag.TextWordWrap,
-                       self.message)
+            self._say(p, self.message)
             return
         plot = QRectF(46.0, 30.0, w - 54.0, h - 30.0 - 22.0)
         x0, x1 = float(self.x[ok].min()), float(self.x[ok].max())
