@@ -393,7 +393,7 @@ def find_centre_friedel(
 def _friedel_correlation(image, *, mask=None, guess_xy=None, search_radius_px=None):
     """:func:`find_centre_friedel` with the correlation at its peak (Pearson r) and its
     prominence (robust SDs), for judging it."""
-    from saedkit.core.detection.spots import _prepare
+    from saedkit.core.detection.spot_model import _prepare
 
     img, bad, _, _ = _prepare(image, mask)
     g = None if guess_xy is None else check_xy("guess_xy", guess_xy)
@@ -608,7 +608,7 @@ def _fit_direct_beam(img: np.ndarray, hard: np.ndarray | None, sat: np.ndarray |
     outshines the brightest other peak, and is low for a peak no wider than
     a spot.
     """
-    from saedkit.core.detection.spots import _fit_gaussian
+    from saedkit.core.detection.spot_fit import _fit_gaussian
 
     rows, cols = img.shape
     work = img.astype(np.float64)
@@ -705,7 +705,7 @@ def _split_mask(data, mask):
     """(float image with excluded pixels zeroed, hard mask or None, saturated pixels outside
     the user's mask or None, saturation level): saturated pixels count as signal for the
     beam, the rest of the mask (e.g. a doubled gap line clipped in the beam) does not."""
-    from saedkit.core.detection.spots import _check_mask, _prepare
+    from saedkit.core.detection.spot_model import _check_mask, _prepare
 
     img, bad, sat, sat_level = _prepare(data, mask)
     user = _check_mask(mask, img.shape)
