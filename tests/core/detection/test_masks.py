@@ -308,3 +308,19 @@ def test_mask_rectangle_any_corner_order():
 def test_editing_rejects_bad_input(call):
     with pytest.raises(InputError):
         call(np.zeros((10, 10), bool))
+
+
+@pytest.mark.parametrize("radius", [1e155, 1e300, float(np.finfo(float).max)])
+def test_mask_disc_huge_radius_covers_everything_without_overflow(radius):
+    # A disc wider than the image's diagonal covers every pixel (geometry); before the clamp a radius
+    # above ~1e154 overflowed radius**2 and int(floor(cy - radius)).
+    with np.errstate(all="raise"):
+        out = mask_disc(np.zeros((8, 10), bool), (4.0, 3.0), radius)
+    assert out.all()
+
+
+def test_mask_disc_far_centre_huge_radius_stays_empty_when_out_of_reach():
+    # a centre 1e200 px away with radius 10 touches nothing (the disc lies far outside)
+    with np.errstate(all="raise"):
+        out = mask_disc(np.zeros((8, 10), bool), (1e200, 3.0), 10.0)
+    assert not out.any()

@@ -821,6 +821,12 @@ def draw_disc(mask: np.ndarray, centre_xy, radius_px: float, *, value: bool = Tr
     cx, cy = float(centre_xy[0]), float(centre_xy[1])
     radius = float(radius_px)
     rows, cols = mask.shape
+    # beyond the farthest pixel corner a disc covers the whole mask; clamping keeps a huge radius
+    # (or a centre far off the image) from overflowing int() and the squared distances
+    reach = max(math.hypot(x - cx, y - cy) for x in (0.0, float(cols)) for y in (0.0, float(rows)))
+    if radius >= reach:
+        mask[...] = bool(value)
+        return
     y0, y1 = max(int(math.floor(cy - radius)), 0), min(int(math.ceil(cy + radius)) + 1, rows)
     x0, x1 = max(int(math.floor(cx - radius)), 0), min(int(math.ceil(cx + radius)) + 1, cols)
     if y0 < y1 and x0 < x1:
