@@ -377,3 +377,24 @@ def test_a_session_whose_image_moved_can_be_pointed_at_it(window, open_pattern, 
                         staticmethod(lambda *a, **k: (str(new_home / "renamed.tif"), "")))
     window.open_session_file(sess, image_path=new_home / "renamed.tif")
     assert window.session is not None and window.session.centre.x == 50
+
+
+def test_calibration_panel_shows_camera_length_with_total_sigma(window, open_pattern, tmp_path):
+    import re
+
+    img, _ = simulate_ring_pattern(find_phase("Au"), shape=(512, 512), camera_constant_px_A=300.0,
+                                   beam_stop=BeamStop(angle_deg=70.0), rng=np.random.default_rng(8))
+    path = tmp_path / "au_px.tif"
+    write_tiff(path, img, pixel_size_um=14.0, voltage_kv=200.0)
+    s = open_pattern(path)
+    window.calibrate()
+    assert s.calibration is not None, window.notices
+    text = window.calibration_panel.result.text()
+    m = re.search(r"camera length L = ([0-9.]+) ± ([0-9.]+) mm", text)
+    assert m, text
+    L, sL = float(m.group(1)), float(m.group(2))
+    # L = K·p/λ with λ(200 kV) = 0.025079 Å (relativistic electron wavelength, from memory of the
+    # standard tables): 300 px·Å × 0.014 mm/px / 0.025079 Å ≈ 167.5 mm
+    assert L == pytest.approx(300.0 * 0.014 / 0.025079, rel=0.003)
+    # the total σ carries the 1 % default reproducibility of K (common practice), not only the fit's σ
+    assert 0.008 * L <= sL <= 0.03 * L

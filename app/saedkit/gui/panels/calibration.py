@@ -227,7 +227,8 @@ class CalibrationPanel(_Panel):
             lines.append("no distortion correction")
         cl = getattr(cal, "camera_length_mm", None)
         if cl:
-            lines.append(f"camera length L = {cl:.1f} mm")
+            # value ± total σ from the calibration itself (one home: the camera model's figure)
+            lines.append(f"camera length L = {fmt_pm(cl, getattr(cal, 'camera_length_sigma_mm', None), 1)} mm")
         q = getattr(cal, "quality", None)
         if q:
             lines.append(f"quality: {q}")
